@@ -1,0 +1,100 @@
+"""Greedy choice with uniform random tie-breaking, and masked maxima.
+
+These few functions are the single place where "greedy" is defined; every
+learner, exploration rule and verifier goes through them.
+
+Tie-breaking draws one uniform number ``u`` in [0, 1) and picks tie
+``floor(u * k)`` among the ``k`` tied actions, so each tied action has
+probability 1/k (to within 2**-53).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ._errors import InvalidParameterError
+
+__all__ = [
+    "allowed_indices",
+    "check_mask",
+    "greedy_action",
+    "masked_max",
+    "masked_mean",
+    "uniform_action",
+]
+
+_NEG_INF = float("-inf")
+
+
+def check_mask(mask: object, n_actions: int, *, name: str = "mask") -> np.ndarray:
+    """Return ``mask`` as a boolean array of shape ``(n_actions,)`` or raise."""
+    arr = np.asarray(mask)
+    if arr.shape != (n_actions,):
+        raise InvalidParameterError(
+            f"{name} must be a boolean array of shape ({n_actions},); got shape {arr.shape}."
+        )
+    if arr.dtype != np.bool_:
+        if not np.isin(arr, (0, 1)).all():
+            raise InvalidParameterError(
+                f"{name} must hold booleans (or 0/1); got {arr!r}."
+            )
+        arr = arr.astype(bool)
+    if not arr.any():
+        raise InvalidParameterError(
+            f"{name} allows no action; at least one entry must be True. Got {arr!r}."
+        )
+    return arr
+
+
+def _tied_pick(ties: np.ndarray | list[int], rng: np.random.Generator) -> int:
+    k = len(ties)
+    if k == 1:
+        return int(ties[0])
+    return int(ties[int(rng.random() * k)])
+
+
+def greedy_action(values: np.ndarray, mask: np.ndarray | None, rng: np.random.Generator) -> int:
+    """Index of a maximal entry of ``values`` (restricted to ``mask``), ties uniform.
+
+    Raises
+    ------
+    FloatingPointError
+        If the candidate values contain NaN, which would make "greedy" undefined.
+    """
+    if mask is not None:
+        values = np.where(mask, values, _NEG_INF)
+    best = values.max()
+    ties = np.flatnonzero(values == best)
+    if ties.size == 0:
+        raise FloatingPointError(
+            f"greedy choice is undefined: action values contain NaN ({values!r}). "
+            "Check rewards and step sizes for overflow."
+        )
+    return _tied_pick(ties, rng)
+
+
+def allowed_indices(mask: np.ndarray) -> np.ndarray:
+    """Indices of the allowed actions."""
+    return np.flatnonzero(mask)
+
+
+def uniform_action(n_actions: int, mask: np.ndarray | None, rng: np.random.Generator) -> int:
+    """A uniformly random allowed action."""
+    if mask is None:
+        return int(rng.random() * n_actions)
+    allowed = np.flatnonzero(mask)
+    return int(allowed[int(rng.random() * allowed.size)])
+
+
+def masked_max(values: np.ndarray, mask: np.ndarray | None) -> float:
+    """``max_a values[a]`` over allowed actions."""
+    if mask is None:
+        return float(values.max())
+    return float(values[mask].max())
+
+
+def masked_mean(values: np.ndarray, mask: np.ndarray | None) -> float:
+    """Mean of ``values`` over allowed actions."""
+    if mask is None:
+        return float(values.mean())
+    return float(values[mask].mean())

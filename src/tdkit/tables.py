@@ -1,0 +1,110 @@
+"""Dense action-value tables with visit counts.
+
+A table has one row per encoded state and one column per action. Next to the
+values it keeps ``visits[s, a]``, the number of updates applied to each pair,
+which per-pair step sizes (:class:`tdkit.schedules.VisitCount`) and UCB read.
+"""
+
+from __future__ import annotations
+
+import math
+import numbers
+
+import numpy as np
+
+from ._errors import InvalidParameterError
+from ._validation import check_positive_int
+
+__all__ = ["ActionValueTable", "InitialValue", "initial_values"]
+
+#: A constant (optimistic if large), or ``(low, high)`` for seeded uniform noise.
+InitialValue = float | tuple[float, float]
+
+
+def initial_values(
+    shape: tuple[int, ...], initial_value: InitialValue, rng: np.random.Generator, *, owner: str
+) -> np.ndarray:
+    """Build the starting array for ``initial_value``.
+
+    Parameters
+    ----------
+    shape : tuple of int
+        Shape of the table.
+    initial_value : float or (float, float)
+        A constant for every entry (an *optimistic* start when it exceeds the
+        largest achievable return), or ``(low, high)`` for values drawn
+        uniformly from ``[low, high)`` with ``rng`` (seeded, so reproducible).
+    rng : numpy.random.Generator
+        Used only for the random form.
+    owner : str
+        Name used in error messages.
+    """
+    if isinstance(initial_value, numbers.Real) and not isinstance(initial_value, bool):
+        value = float(initial_value)
+        if not math.isfinite(value):
+            raise InvalidParameterError(
+                f"{owner}: initial_value must be finite; got {initial_value!r}."
+            )
+        return np.full(shape, value, dtype=np.float64)
+    if (
+        isinstance(initial_value, tuple)
+        and len(initial_value) == 2
+        and all(isinstance(x, numbers.Real) and math.isfinite(x) for x in initial_value)
+        and initial_value[0] <= initial_value[1]
+    ):
+        low, high = (float(x) for x in initial_value)
+        return rng.uniform(low, high, size=shape)
+    raise InvalidParameterError(
+        f"{owner}: initial_value must be a finite float or a (low, high) tuple with "
+        f"low <= high; got {initial_value!r}."
+    )
+
+
+class ActionValueTable:
+    """Action values ``values[s, a]`` and update counts ``visits[s, a]``.
+
+    Parameters
+    ----------
+    n_states, n_actions : int
+        Table shape.
+    initial_value : float or (float, float)
+        See :func:`initial_values`.
+    rng : numpy.random.Generator
+        Source for random initial values.
+    owner : str
+        Name used in error messages.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> t = ActionValueTable(2, 3, initial_value=5.0, rng=np.random.default_rng(0))
+    >>> t.values.shape, float(t.values[1, 2]), int(t.visits.sum())
+    ((2, 3), 5.0, 0)
+    """
+
+    __slots__ = ("values", "visits")
+
+    def __init__(
+        self,
+        n_states: int,
+        n_actions: int,
+        *,
+        initial_value: InitialValue = 0.0,
+        rng: np.random.Generator,
+        owner: str = "ActionValueTable",
+    ) -> None:
+        n_states = check_positive_int(owner, "n_states", n_states)
+        n_actions = check_positive_int(owner, "n_actions", n_actions)
+        self.values = initial_values((n_states, n_actions), initial_value, rng, owner=owner)
+        self.visits = np.zeros((n_states, n_actions), dtype=np.int64)
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return self.values.shape  # type: ignore[return-value]
+
+
+def read_only(array: np.ndarray) -> np.ndarray:
+    """A read-only view of ``array`` (no copy)."""
+    view = array.view()
+    view.flags.writeable = False
+    return view
