@@ -200,7 +200,7 @@ def test_sarsa_commits_the_action_used_in_its_target():
         set_table(agent, [[0.0, 0.0, 0.0], [10.0, 20.0, 30.0]])
         agent.observe(0, 0, 0.0, 1, False, False)
         agent.update()
-        used = int(round(agent.table[0, 0] / 10.0)) - 1
+        used = round(agent.table[0, 0] / 10.0) - 1
         assert agent.act(1) == used
 
 

@@ -119,7 +119,9 @@ class EpsilonGreedy(Exploration):
     """
 
     def __init__(self, epsilon: float | Schedule = 0.1) -> None:
-        self.epsilon = as_schedule(epsilon, owner="EpsilonGreedy", name="epsilon", low=0.0, high=1.0)
+        self.epsilon = as_schedule(
+            epsilon, owner="EpsilonGreedy", name="epsilon", low=0.0, high=1.0
+        )
         self._fixed = self.epsilon.constant if isinstance(self.epsilon, Constant) else None
 
     def current(self, step: int) -> float:

@@ -32,7 +32,8 @@ class History:
     Examples
     --------
     >>> h = History()
-    >>> h.add_episode(ret=1.5, length=3, end="terminated", td_count=3, td_abs_sum=0.9, td_abs_max=0.5)
+    >>> h.add_episode(ret=1.5, length=3, end="terminated", td_count=3, td_abs_sum=0.9,
+    ...               td_abs_max=0.5)
     >>> len(h), float(h.returns[0]), h.to_records()[0]["end"]
     (1, 1.5, 'terminated')
     """

@@ -20,7 +20,7 @@ in simulation, keep a person responsible for real orders).
 from __future__ import annotations
 
 import math
-from typing import Any
+from typing import Any, ClassVar
 
 import gymnasium as gym
 import numpy as np
@@ -54,7 +54,7 @@ class InventoryEnv(gym.Env):
     :meth:`transition_model` gives the exact model for dynamic programming.
     """
 
-    metadata: dict[str, Any] = {"render_modes": []}
+    metadata: ClassVar[dict[str, Any]] = {"render_modes": []}
 
     def __init__(
         self,
@@ -139,7 +139,9 @@ class InventoryEnv(gym.Env):
         n = self.capacity + 1
         lam = self.mean_demand
         d_max = 2 * self.capacity + 20
-        pmf = np.array([math.exp(-lam + d * math.log(lam) - math.lgamma(d + 1)) for d in range(d_max)])
+        pmf = np.array(
+            [math.exp(-lam + d * math.log(lam) - math.lgamma(d + 1)) for d in range(d_max)]
+        )
         tail = max(0.0, 1.0 - pmf.sum())
         tail_mean = lam - float(np.arange(d_max) @ pmf)  # E[D; D >= d_max]
         P = np.zeros((n, n, n))
@@ -155,8 +157,13 @@ class InventoryEnv(gym.Env):
                 available = s + order
                 P[s, q, 0] += tail
                 R[s, q] += (
-                    tail * (self.price * available - self.unit_cost * order
-                            - (self.order_fee if order > 0 else 0.0) + self.lost_sale_penalty * available)
+                    tail
+                    * (
+                        self.price * available
+                        - self.unit_cost * order
+                        - (self.order_fee if order > 0 else 0.0)
+                        + self.lost_sale_penalty * available
+                    )
                     - self.lost_sale_penalty * tail_mean
                 )
         return P, R

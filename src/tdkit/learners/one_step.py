@@ -229,7 +229,8 @@ class DoubleQLearning(TabularAgent):
     Parameters
     ----------
     n_states, n_actions, gamma, step_size, exploration, initial_value, seed
-        As for :class:`QLearning`; so are ``state_encoder`` and ``action_encoder``. Each table keeps its own visit counts.
+        As for :class:`QLearning`; so are ``state_encoder`` and ``action_encoder``.
+        Each table keeps its own visit counts.
 
     References
     ----------
