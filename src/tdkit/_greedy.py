@@ -27,23 +27,33 @@ _NEG_INF = float("-inf")
 
 
 def check_mask(mask: object, n_actions: int, *, name: str = "mask") -> np.ndarray:
-    """Return ``mask`` as a boolean array of shape ``(n_actions,)`` or raise."""
-    arr = np.asarray(mask)
-    if arr.shape != (n_actions,):
-        raise InvalidParameterError(
-            f"{name} must be a boolean array of shape ({n_actions},); got shape {arr.shape}."
-        )
-    if arr.dtype != np.bool_:
-        if not np.isin(arr, (0, 1)).all():
+    """Return ``mask`` as a boolean array of shape ``(n_actions,)`` or raise.
+
+    Boolean arrays of the right shape (the common case on the hot path) cost
+    one ``any()``; integer 0/1 masks, as some gymnasium envs return, are
+    converted.
+    """
+    if type(mask) is np.ndarray and mask.dtype == np.bool_ and mask.shape == (n_actions,):
+        if mask.any():
+            return mask
+        arr = mask
+    else:
+        arr = np.asarray(mask)
+        if arr.shape != (n_actions,):
             raise InvalidParameterError(
-                f"{name} must hold booleans (or 0/1); got {arr!r}."
+                f"{name} must be a boolean array of shape ({n_actions},); got shape {arr.shape}."
             )
-        arr = arr.astype(bool)
-    if not arr.any():
-        raise InvalidParameterError(
-            f"{name} allows no action; at least one entry must be True. Got {arr!r}."
-        )
-    return arr
+        if arr.dtype != np.bool_:
+            if arr.dtype.kind not in "biu" or arr.min() < 0 or arr.max() > 1:
+                raise InvalidParameterError(
+                    f"{name} must hold booleans (or 0/1 integers); got {arr!r}."
+                )
+            arr = arr.astype(bool)
+        if arr.any():
+            return arr
+    raise InvalidParameterError(
+        f"{name} allows no action; at least one entry must be True. Got {arr!r}."
+    )
 
 
 def _tied_pick(ties: np.ndarray | list[int], rng: np.random.Generator) -> int:
@@ -63,8 +73,7 @@ def greedy_action(values: np.ndarray, mask: np.ndarray | None, rng: np.random.Ge
     """
     if mask is not None:
         values = np.where(mask, values, _NEG_INF)
-    best = values.max()
-    ties = np.flatnonzero(values == best)
+    ties = (values == values.max()).nonzero()[0]
     if ties.size == 0:
         raise FloatingPointError(
             f"greedy choice is undefined: action values contain NaN ({values!r}). "

@@ -36,6 +36,19 @@ def episode_seed(root: np.random.SeedSequence, episode: int) -> int:
     return int(child.generate_state(1, dtype=np.uint32)[0])
 
 
+def _info_mask(info: dict[str, Any] | None) -> np.ndarray | None:
+    """The action mask in ``info`` as a boolean array (None when absent)."""
+    if not info:
+        return None
+    mask = info.get("action_mask")
+    if mask is None or (type(mask) is np.ndarray and mask.dtype == np.bool_):
+        return mask
+    arr = np.asarray(mask)
+    if arr.dtype.kind in "iu" and arr.size and arr.min() >= 0 and arr.max() <= 1:
+        return arr.astype(bool)
+    return arr  # let the agent's own check report anything stranger
+
+
 def _root(seed: int | np.random.SeedSequence | None) -> np.random.SeedSequence:
     if isinstance(seed, np.random.SeedSequence):
         return seed
@@ -68,6 +81,7 @@ def train(
     callbacks: Iterable[Callback] = (),
     checkpoint: Any = None,
     resume: Any = None,
+    use_action_masks: bool = True,
 ) -> History:
     """Train ``agent`` on ``env`` and return the per-episode :class:`History`.
 
@@ -99,6 +113,10 @@ def train(
         training.
     checkpoint, resume
         Reserved for checkpointing (see :mod:`tdkit.store`); not yet available.
+    use_action_masks : bool, default True
+        Pass ``info["action_mask"]`` to the agent. Set False to ignore masks
+        an environment offers only as a hint (gymnasium's Taxi marks moves
+        into walls, which are legal but useless).
 
     Returns
     -------
@@ -136,7 +154,7 @@ def train(
     try:
         while (episodes is None or episode < episodes) and (steps is None or total < steps):
             obs, info = env.reset(seed=episode_seed(root, episode))
-            mask = info.get("action_mask") if info else None
+            mask = _info_mask(info) if use_action_masks else None
             ret = 0.0
             length = 0
             td_n = 0
@@ -149,7 +167,7 @@ def train(
                 length += 1
                 if max_episode_steps is not None and length >= max_episode_steps:
                     truncated = True
-                next_mask = info.get("action_mask") if info else None
+                next_mask = _info_mask(info) if use_action_masks else None
                 observe(obs, action, reward, next_obs, terminated, truncated, next_mask=next_mask)
                 for err in update():
                     err = abs(err)
@@ -187,6 +205,7 @@ def evaluate(
     episodes: int = 100,
     seed: int | np.random.SeedSequence | None = None,
     max_episode_steps: int | None = None,
+    use_action_masks: bool = True,
 ) -> np.ndarray:
     """Returns of ``episodes`` greedy episodes (``explore=False``, no learning).
 
@@ -201,6 +220,8 @@ def evaluate(
     max_episode_steps : int, optional
         Cut episodes after this many steps (a greedy policy can loop forever
         in an environment without a time limit).
+    use_action_masks : bool, default True
+        As for :func:`train`.
 
     Returns
     -------
@@ -215,7 +236,7 @@ def evaluate(
     returns = np.empty(episodes)
     for episode in range(episodes):
         obs, info = env.reset(seed=episode_seed(root, episode))
-        mask = info.get("action_mask") if info else None
+        mask = _info_mask(info) if use_action_masks else None
         ret = 0.0
         length = 0
         while True:
@@ -228,6 +249,6 @@ def evaluate(
                 break
             if max_episode_steps is not None and length >= max_episode_steps:
                 break
-            mask = info.get("action_mask") if info else None
+            mask = _info_mask(info) if use_action_masks else None
         returns[episode] = ret
     return returns
