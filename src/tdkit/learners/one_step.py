@@ -111,11 +111,14 @@ class Sarsa(TabularAgent):
 
     Examples
     --------
-    >>> agent = Sarsa(2, 2, gamma=1.0, step_size=1.0, exploration=0.0, seed=0)
-    >>> agent.observe(0, 0, 1.0, 1, False, False)
-    >>> agent.update()
-    (1.0,)
-    >>> agent.act(1) == agent._committed[1]  # the committed next action
+    >>> agent = Sarsa(2, 3, gamma=1.0, step_size=1.0, exploration=1.0, seed=0)
+    >>> agent.observe(1, 0, 10.0, 0, True, False)      # teach Q(1, .) distinct values
+    >>> agent.observe(1, 1, 20.0, 0, True, False)
+    >>> agent.observe(1, 2, 30.0, 0, True, False)
+    >>> _ = agent.update()
+    >>> agent.observe(0, 0, 0.0, 1, False, False)
+    >>> (delta,) = agent.update()   # the target used Q(1, a') of the committed a'
+    >>> agent.act(1) == round(delta / 10.0) - 1   # and act returns that same a'
     True
     """
 
