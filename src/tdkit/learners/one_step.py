@@ -18,6 +18,7 @@ import numpy as np
 from .._greedy import greedy_action, masked_max
 from ..agent import TabularAgent, Transition
 from ..tables import ActionValueTable, InitialValue, read_only
+from ._commit import CommitsNextAction
 
 __all__ = ["DoubleQLearning", "ExpectedSarsa", "QLearning", "Sarsa"]
 
@@ -81,7 +82,7 @@ class QLearning(TabularAgent):
         return (self._td_step(self._q, self._visits, s, a, target),)
 
 
-class Sarsa(TabularAgent):
+class Sarsa(CommitsNextAction, TabularAgent):
     r"""SARSA: on-policy TD control with the action actually taken next.
 
     .. math::
@@ -122,51 +123,14 @@ class Sarsa(TabularAgent):
     True
     """
 
-    def __init__(self, *args: Any, **kwargs: Any) -> None:
-        super().__init__(*args, **kwargs)
-        # (state, action, already_returned_by_act) or None
-        self._committed: tuple[int, int, bool] | None = None
-
-    def act(self, obs: Any, *, mask: Any = None, explore: bool = True) -> Any:
-        s = self._encode(obs)
-        if mask is not None:
-            from .._greedy import check_mask
-
-            mask = check_mask(mask, self.n_actions)
-        if not explore:
-            return self._env_action(greedy_action(self._q[s], mask, self._rng))
-        committed = self._committed
-        if committed is not None and not committed[2]:
-            self._committed = None
-            cs, ca, _ = committed
-            if cs == s and (mask is None or mask[ca]):
-                return self._env_action(ca)
-        a = self._choose(s, mask, True)
-        pending = self._pending
-        if pending:
-            last = pending[-1]
-            if last[3] == s and not (last[4] or last[5]):
-                self._committed = (s, a, True)  # act came first: update must use this action
-        return self._env_action(a)
-
     def _learn(self, transition: Transition) -> tuple[float, ...]:
         s, a, r, s2, terminated, truncated, next_mask = transition
         if terminated:
-            self._committed = None
+            self._drop_next_action()
             target = r
         else:
-            committed = self._committed
-            if committed is not None and committed[2] and committed[0] == s2:
-                a2 = committed[1]
-                self._committed = None
-            else:
-                a2 = self._choose(s2, next_mask, True)
-                self._committed = None if truncated else (s2, a2, False)
-            target = r + self.gamma * self._q[s2, a2]
+            target = r + self.gamma * self._q[s2, self._next_action(s2, next_mask, truncated)]
         return (self._td_step(self._q, self._visits, s, a, target),)
-
-    def _end_episode(self) -> None:
-        self._committed = None
 
 
 class ExpectedSarsa(TabularAgent):
