@@ -15,7 +15,6 @@ References
 
 from __future__ import annotations
 
-import math
 from abc import ABC, abstractmethod
 from typing import Any
 
@@ -137,10 +136,7 @@ class Exponential(Schedule):
             )
 
     def value(self, step: int, visits: int = 1) -> float:
-        if self.decay == 1.0:
-            return self.start
-        # Past this many steps the decayed value is below the floor; avoids underflow work.
-        decayed = self.start * math.exp(step * math.log(self.decay))
+        decayed = self.start * self.decay**step  # underflows harmlessly to 0.0
         return decayed if decayed > self.minimum else self.minimum
 
     def bounds(self) -> tuple[float, float]:
