@@ -33,3 +33,9 @@ class EnvironmentProtocolError(TdkitError, TypeError):
 
 class StoreError(TdkitError, ValueError):
     """A saved file is foreign, truncated, tampered with or of the wrong version."""
+
+
+# Show the public path (tdkit.InvalidParameterError) in tracebacks and reprs.
+for _cls in (TdkitError, InvalidParameterError, CapacityError, EnvironmentProtocolError, StoreError):
+    _cls.__module__ = "tdkit"
+del _cls
