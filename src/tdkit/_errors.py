@@ -36,6 +36,8 @@ class StoreError(TdkitError, ValueError):
 
 
 # Show the public path (tdkit.InvalidParameterError) in tracebacks and reprs.
-for _cls in (TdkitError, InvalidParameterError, CapacityError, EnvironmentProtocolError, StoreError):
+for _cls in (
+    TdkitError, InvalidParameterError, CapacityError, EnvironmentProtocolError, StoreError
+):
     _cls.__module__ = "tdkit"
 del _cls
