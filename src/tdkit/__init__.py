@@ -18,6 +18,7 @@ from .agent import Agent, TabularAgent
 from .history import History
 from .learners import DoubleQLearning, ExpectedSarsa, QLearning, Sarsa
 from .loop import evaluate, train
+from .store import load, save
 
 __version__ = "0.1.0"
 
@@ -34,6 +35,9 @@ __all__ = [
     "History",
     "evaluate",
     "train",
+    # persistence
+    "load",
+    "save",
     # building blocks
     "envs",
     "exploration",

@@ -82,6 +82,7 @@ def train(
     checkpoint: Any = None,
     resume: Any = None,
     use_action_masks: bool = True,
+    checkpoint_every: int = 100,
 ) -> History:
     """Train ``agent`` on ``env`` and return the per-episode :class:`History`.
 
@@ -111,12 +112,20 @@ def train(
     callbacks : iterable of callables
         ``callback(history, agent)`` after each episode; a truthy return stops
         training.
-    checkpoint, resume
-        Reserved for checkpointing (see :mod:`tdkit.store`); not yet available.
+    checkpoint : path-like, optional
+        Write a checkpoint (learner state, loop position, History) to this
+        ``.npz`` file every ``checkpoint_every`` episodes and at the end.
+    resume : path-like, optional
+        Continue the run saved in this checkpoint: the agent (built with the
+        same hyper-parameters) gets the saved state, and training continues
+        with the same per-episode seeds, so the result equals that of the
+        uninterrupted run. ``episodes`` and ``steps`` count the whole run.
     use_action_masks : bool, default True
         Pass ``info["action_mask"]`` to the agent. Set False to ignore masks
         an environment offers only as a hint (gymnasium's Taxi marks moves
         into walls, which are legal but useless).
+    checkpoint_every : int, default 100
+        Episodes between checkpoints.
 
     Returns
     -------
@@ -138,19 +147,17 @@ def train(
         steps = check_positive_int("train", "steps", steps)
     if max_episode_steps is not None:
         max_episode_steps = check_positive_int("train", "max_episode_steps", max_episode_steps)
-    if checkpoint is not None or resume is not None:
-        raise NotImplementedError(
-            "train: checkpoint/resume are not available in this version; save the agent with "
-            "tdkit.save after training instead."
-        )
+    checkpoint_every = check_positive_int("train", "checkpoint_every", checkpoint_every)
     env = adapt(env)
     root = _root(seed)
     callbacks = tuple(callbacks)
     history = History()
-    bar = _progress_bar(episodes, progress)
-    act, observe, update, step_env = agent.act, agent.observe, agent.update, env.step
     total = 0
     episode = 0
+    if resume is not None:
+        root, episode, total, history = _resume(resume, agent, root, seed)
+    bar = _progress_bar(episodes, progress)
+    act, observe, update, step_env = agent.act, agent.observe, agent.update, env.step
     try:
         while (episodes is None or episode < episodes) and (steps is None or total < steps):
             obs, info = env.reset(seed=episode_seed(root, episode))
@@ -190,12 +197,53 @@ def train(
             episode += 1
             if bar is not None:
                 bar.update(1)
+            if checkpoint is not None and episode % checkpoint_every == 0:
+                _checkpoint(checkpoint, agent, root, episode, total, history)
             if any([bool(cb(history, agent)) for cb in callbacks]):
                 break
     finally:
         if bar is not None:
             bar.close()
+    if checkpoint is not None and episode % checkpoint_every != 0:
+        _checkpoint(checkpoint, agent, root, episode, total, history)
     return history
+
+
+def _checkpoint(
+    path: Any, agent: Any, root: np.random.SeedSequence, episode: int, total: int,
+    history: History,
+) -> None:
+    from .store import save_checkpoint
+
+    loop_state = {
+        "episode": episode,
+        "total_steps": total,
+        "root_entropy": str(root.entropy),
+        "root_spawn_key": list(root.spawn_key),
+    }
+    save_checkpoint(path, agent, loop_state, history.to_arrays())
+
+
+def _resume(
+    path: Any, agent: Any, root: np.random.SeedSequence, seed: Any
+) -> tuple[np.random.SeedSequence, int, int, History]:
+    from .store import load_checkpoint
+
+    loop_state, history_arrays = load_checkpoint(path, agent)
+    saved_root = np.random.SeedSequence(
+        int(loop_state["root_entropy"]), spawn_key=tuple(loop_state["root_spawn_key"])
+    )
+    if seed is not None and (saved_root.entropy, saved_root.spawn_key) != (
+        root.entropy, root.spawn_key
+    ):
+        raise InvalidParameterError(
+            f"train: resume={str(path)!r} was written by a run with another seed than "
+            f"seed={seed!r}; pass the original seed or seed=None to continue it."
+        )
+    return (
+        saved_root, int(loop_state["episode"]), int(loop_state["total_steps"]),
+        History.from_arrays(history_arrays),
+    )
 
 
 def evaluate(
