@@ -190,3 +190,10 @@ def test_demo_runs_and_learns_better_than_never_ordering():
     results = run_demo(episodes=300, eval_episodes=20, echo=lines.append)
     assert results["learned greedy policy"] > results["never order"]
     assert any("Q-learning" in line for line in lines)
+
+
+def test_progress_bar_runs_when_tqdm_is_installed(capsys):
+    pytest.importorskip("tqdm")
+    history = tdkit.train(QLearning(6, 2, seed=0), Chain(), episodes=5, progress=True)
+    assert len(history) == 5
+    assert "5/5" in capsys.readouterr().err
