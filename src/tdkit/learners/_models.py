@@ -1,0 +1,185 @@
+r"""Learned models of the environment for the planning learners.
+
+Two tabular models answer the same questions:
+
+* :class:`LastOutcomeModel` (``model="last"``): each pair predicts the last
+  outcome observed, the deterministic model of the book's Tabular Dyna-Q.
+* :class:`CountsModel` (``model="counts"``): each pair keeps a count of each
+  distinct ``(next state, terminated)`` outcome and the mean reward seen with
+  it, i.e. the maximum-likelihood model of a stochastic environment.
+
+An outcome is ``(reward, next_state, terminated, next_mask)``. Transitions cut
+by a time limit are recorded as ordinary, non-terminal outcomes: truncation
+is not part of the dynamics. Both models keep predecessor lists (which pairs
+are predicted to lead to a state) for prioritized sweeping.
+
+References
+----------
+.. [1] Sutton, R. S. & Barto, A. G. (2018). Reinforcement Learning: An
+   Introduction, 2nd ed., Sections 8.2 (Tabular Dyna-Q) and 8.4
+   (prioritized sweeping with counts for stochastic environments).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .._errors import InvalidParameterError
+
+__all__ = ["MODEL_KINDS", "CountsModel", "LastOutcomeModel", "make_model"]
+
+#: The model kinds the planning learners accept.
+MODEL_KINDS = ("last", "counts")
+
+Outcome = tuple[float, int, bool, "np.ndarray | None"]
+"""(reward, next state, terminated, mask of the next state)."""
+
+
+class _PairIndex:
+    """Observed states and, per state, the actions taken there (insertion order)."""
+
+    def __init__(self) -> None:
+        self.states: list[int] = []
+        self.actions: dict[int, list[int]] = {}
+        self.predecessors: dict[int, dict[tuple[int, int], None]] = {}
+
+    def _note_pair(self, s: int, a: int, is_new: bool) -> None:
+        if not is_new:
+            return
+        acts = self.actions.get(s)
+        if acts is None:
+            self.states.append(s)
+            self.actions[s] = [a]
+        else:
+            acts.append(a)
+
+    def sample_pair(self, rng: np.random.Generator) -> tuple[int, int]:
+        """A uniformly random observed state, then a uniformly random action taken there."""
+        states = self.states
+        s = states[int(rng.random() * len(states))]
+        acts = self.actions[s]
+        return s, acts[int(rng.random() * len(acts))]
+
+    def predecessors_of(self, s2: int) -> list[tuple[int, int]]:
+        """Pairs the model predicts can lead to ``s2``."""
+        return list(self.predecessors.get(s2, ()))
+
+    def __len__(self) -> int:
+        return len(self.states)
+
+
+class LastOutcomeModel(_PairIndex):
+    """Each observed pair predicts the outcome it had last (deterministic model).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> m = LastOutcomeModel()
+    >>> m.record(0, 1, 2.0, 3, False, None)
+    >>> m.outcomes(0, 1)
+    [(1.0, 2.0, 3, False, None)]
+    >>> m.predecessors_of(3)
+    [(0, 1)]
+    """
+
+    def __init__(self) -> None:
+        super().__init__()
+        self._table: dict[tuple[int, int], Outcome] = {}
+
+    def record(
+        self, s: int, a: int, r: float, s2: int, terminated: bool, mask: np.ndarray | None
+    ) -> None:
+        """Remember ``(r, s2, terminated, mask)`` as the prediction for ``(s, a)``."""
+        key = (s, a)
+        old = self._table.get(key)
+        self._note_pair(s, a, old is None)
+        if old is not None and old[1] != s2:
+            self.predecessors[old[1]].pop(key, None)
+        self._table[key] = (r, s2, terminated, mask)
+        self.predecessors.setdefault(s2, {})[key] = None
+
+    def sample(self, s: int, a: int, rng: np.random.Generator) -> Outcome:
+        """The predicted outcome of ``(s, a)`` (``rng`` is unused)."""
+        return self._table[(s, a)]
+
+    def outcomes(self, s: int, a: int) -> list[tuple[float, float, int, bool, np.ndarray | None]]:
+        """``[(probability, reward, next_state, terminated, mask)]`` for ``(s, a)``."""
+        r, s2, terminated, mask = self._table[(s, a)]
+        return [(1.0, r, s2, terminated, mask)]
+
+    def __contains__(self, pair: object) -> bool:
+        return pair in self._table
+
+
+class CountsModel(_PairIndex):
+    """Outcome counts and mean rewards per pair (maximum-likelihood model).
+
+    Examples
+    --------
+    >>> m = CountsModel()
+    >>> for r, s2 in [(1.0, 1), (3.0, 1), (0.0, 2)]:
+    ...     m.record(0, 0, r, s2, False, None)
+    >>> [(round(p, 3), r, s2) for p, r, s2, _, _ in m.outcomes(0, 0)]
+    [(0.667, 2.0, 1), (0.333, 0.0, 2)]
+    """
+
+    def __init__(self) -> None:
+        super().__init__()
+        # (s, a) -> {(s2, terminated): [count, mean reward, latest mask]}, and total counts
+        self._table: dict[tuple[int, int], dict[tuple[int, bool], list]] = {}
+        self._totals: dict[tuple[int, int], int] = {}
+
+    def record(
+        self, s: int, a: int, r: float, s2: int, terminated: bool, mask: np.ndarray | None
+    ) -> None:
+        """Count the outcome and update its mean reward incrementally."""
+        key = (s, a)
+        per_pair = self._table.get(key)
+        self._note_pair(s, a, per_pair is None)
+        if per_pair is None:
+            per_pair = self._table[key] = {}
+            self._totals[key] = 0
+        entry = per_pair.get((s2, terminated))
+        if entry is None:
+            per_pair[(s2, terminated)] = [1, r, mask]
+        else:
+            entry[0] += 1
+            entry[1] += (r - entry[1]) / entry[0]
+            entry[2] = mask
+        self._totals[key] += 1
+        self.predecessors.setdefault(s2, {})[key] = None
+
+    def sample(self, s: int, a: int, rng: np.random.Generator) -> Outcome:
+        """An outcome of ``(s, a)`` drawn with probability proportional to its count."""
+        key = (s, a)
+        u = rng.random() * self._totals[key]
+        items = self._table[key].items()
+        for (s2, terminated), (count, mean_r, mask) in items:
+            u -= count
+            if u < 0:
+                return mean_r, s2, terminated, mask
+        return mean_r, s2, terminated, mask  # pragma: no cover - rounding guard
+
+    def outcomes(self, s: int, a: int) -> list[tuple[float, float, int, bool, np.ndarray | None]]:
+        """``[(probability, mean reward, next_state, terminated, mask)]`` for ``(s, a)``."""
+        key = (s, a)
+        total = self._totals[key]
+        return [
+            (count / total, mean_r, s2, terminated, mask)
+            for (s2, terminated), (count, mean_r, mask) in self._table[key].items()
+        ]
+
+    def __contains__(self, pair: object) -> bool:
+        return pair in self._table
+
+
+def make_model(owner: str, kind: object) -> LastOutcomeModel | CountsModel:
+    """Build the model named ``kind`` or raise naming the parameter."""
+    if kind == "last":
+        return LastOutcomeModel()
+    if kind == "counts":
+        return CountsModel()
+    raise InvalidParameterError(
+        f"{owner}: model must be 'last' (deterministic, last outcome) or 'counts' "
+        f"(stochastic, outcome counts); got {kind!r}."
+    )

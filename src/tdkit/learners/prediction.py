@@ -1,0 +1,387 @@
+r"""TD prediction: state values :math:`v_\pi` of a given policy, by TD(0) and TD(λ).
+
+The learners speak the same act / observe / update protocol as the control
+learners, so :func:`tdkit.train` runs them: ``act`` samples the given policy
+(``explore`` is ignored, there is nothing to explore), and the updates learn
+:math:`V(s) \approx v_\pi(s)`. The transitions are assumed to follow the
+policy; actions are checked for range but do not enter the updates.
+
+* ``terminated``: the target does not bootstrap; ``truncated`` (a time
+  limit): it bootstraps from :math:`V(S_{t+1})`.
+* ``policy`` is an ``(n_states, n_actions)`` table of probabilities (rows sum
+  to 1) or a callable ``obs -> action``. With a table and a ``mask`` the
+  probabilities are renormalised over the allowed actions; a callable that
+  returns a masked action raises.
+
+The values live in a ``(n_states, 1)`` table, so the shared TD step of
+:class:`~tdkit.agent.TabularAgent` and the shared trace step serve them
+unchanged; :attr:`values_table` (alias :attr:`v`, and :attr:`table`) is its
+``(n_states,)`` read-only view.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Iterable, Sequence
+from typing import Any, ClassVar
+
+import numpy as np
+
+from .._errors import InvalidParameterError
+from .._greedy import check_mask
+from .._validation import check_in_range, check_positive_int
+from ..agent import TabularAgent, Transition
+from ..tables import InitialValue, initial_values, read_only
+from .traces import _TRACE_PARAMS_DOC, _TraceLearner
+
+__all__ = ["TD0", "TDLambda"]
+
+_ROW_ATOL = 1e-8
+"""Allowed deviation of a policy row's sum from 1."""
+
+
+class _PolicyLearner(TabularAgent):
+    """Acting with a given policy and a state-value table (shared by TD0 and TDLambda)."""
+
+    _extra_params: ClassVar[tuple[str, ...]] = ("policy",)
+
+    def __init__(
+        self,
+        n_states: int,
+        n_actions: int,
+        *,
+        policy: Any,
+        gamma: float = 0.99,
+        step_size: Any = 0.1,
+        initial_value: InitialValue = 0.0,
+        seed: Any = None,
+        state_encoder: Any = None,
+        action_encoder: Any = None,
+        **kwargs: Any,
+    ) -> None:
+        super().__init__(
+            n_states, n_actions, gamma=gamma, step_size=step_size, exploration=0.0,
+            initial_value=initial_value, seed=seed, state_encoder=state_encoder,
+            action_encoder=action_encoder, **kwargs,
+        )
+        self.policy = policy
+        self._policy_cum, self._policy_fn = self._check_policy(policy)
+
+    def _check_policy(self, policy: Any) -> tuple[np.ndarray | None, Callable | None]:
+        name = type(self).__name__
+        if callable(policy) and not isinstance(policy, np.ndarray):
+            return None, policy
+        try:
+            table = np.array(policy, dtype=np.float64)
+        except (TypeError, ValueError):
+            raise InvalidParameterError(
+                f"{name}: policy must be an (n_states, n_actions) probability table or a "
+                f"callable obs -> action; got {policy!r:.80}."
+            ) from None
+        shape = (self.n_states, self.n_actions)
+        if table.shape != shape:
+            raise InvalidParameterError(
+                f"{name}: policy table must have shape (n_states, n_actions) = {shape}; got "
+                f"shape {table.shape}. Pass one row of action probabilities per state."
+            )
+        bad = ~np.isfinite(table) | (table < 0)
+        if bad.any():
+            s, a = (int(i) for i in np.argwhere(bad)[0])
+            raise InvalidParameterError(
+                f"{name}: policy[{s}, {a}] = {table[s, a]!r}; probabilities must be finite and "
+                ">= 0."
+            )
+        sums = table.sum(axis=1)
+        off = np.abs(sums - 1.0) > _ROW_ATOL
+        if off.any():
+            s = int(np.flatnonzero(off)[0])
+            raise InvalidParameterError(
+                f"{name}: policy row {s} sums to {sums[s]!r}; every row must sum to 1 "
+                f"(within {_ROW_ATOL:g}). Normalise the table, e.g. policy / policy.sum(1, "
+                "keepdims=True)."
+            )
+        return np.cumsum(table / sums[:, None], axis=1), None
+
+    # ------------------------------------------------------------------ tables
+    def _init_tables(self, initial_value: InitialValue) -> None:
+        owner = type(self).__name__
+        self._q = initial_values((self.n_states, 1), initial_value, self._rng, owner=owner)
+        self._visits = np.zeros((self.n_states, 1), dtype=np.int64)
+
+    @property
+    def values_table(self) -> np.ndarray:
+        """The state values :math:`V`, shape ``(n_states,)`` (read-only view)."""
+        return read_only(self._q[:, 0])
+
+    v = values_table
+    table = values_table
+
+    @property
+    def visits(self) -> np.ndarray:
+        """Update counts ``n(s)``, shape ``(n_states,)`` (read-only view)."""
+        return read_only(self._visits[:, 0])
+
+    def values(self, obs: Any) -> float:
+        """The estimated value :math:`V(s)` of ``obs``."""
+        return float(self._q[self._encode(obs), 0])
+
+    def q_values(self, obs: Any) -> np.ndarray:
+        """Not available: prediction learners estimate state values (use :meth:`values`)."""
+        raise NotImplementedError(
+            f"{type(self).__name__} learns state values, not action values; use "
+            "values(obs) or values_table."
+        )
+
+    # ------------------------------------------------------------------ acting
+    def act(self, obs: Any, *, mask: Any = None, explore: bool = True) -> Any:
+        """An action drawn from the given policy (``explore`` is ignored)."""
+        if mask is not None:
+            mask = check_mask(mask, self.n_actions)
+        if self._policy_fn is not None:
+            action = self._policy_fn(obs)
+            if mask is not None and not mask[self._action_index(action)]:
+                raise InvalidParameterError(
+                    f"{type(self).__name__}: the policy returned action {action!r}, which the "
+                    f"mask {mask!r} forbids in state {obs!r}; make the policy respect masks."
+                )
+            return action
+        return self._env_action(self._choose(self._encode(obs), mask, True))
+
+    def _choose(self, s: int, mask: np.ndarray | None, explore: bool) -> int:
+        cum = self._policy_cum[s]  # type: ignore[index]
+        if mask is None:
+            # u < cum[-1], so the first cum > u has positive probability.
+            a = int(np.searchsorted(cum, self._rng.random() * cum[-1], side="right"))
+            return min(a, self.n_actions - 1)
+        probs = np.diff(cum, prepend=0.0) * mask
+        total = probs.sum()
+        if total <= 0.0:
+            raise InvalidParameterError(
+                f"{type(self).__name__}: the policy gives probability 0 to every action the "
+                f"mask {mask!r} allows in state {s}; the policy table must put mass on "
+                "allowed actions."
+            )
+        cum = np.cumsum(probs)
+        a = min(int(np.searchsorted(cum, self._rng.random() * total, side="right")),
+                self.n_actions - 1)
+        while probs[a] == 0.0:
+            a -= 1
+        return a
+
+    # ------------------------------------------------------------------ params
+    def get_params(self) -> dict[str, Any]:
+        """Constructor arguments, as given."""
+        params = super().get_params()
+        del params["exploration"]
+        return params
+
+    def __repr__(self) -> str:
+        shown = ("n_states", "n_actions", "gamma", "step_size", *self._extra_params)
+        params = self.get_params()
+        return f"{type(self).__name__}({', '.join(f'{k}={params[k]!r}' for k in shown)})"
+
+
+_POLICY_DOC = r"""
+    Parameters
+    ----------
+    n_states, n_actions : int
+        Table shape (states; actions of the policy).
+    policy : array_like of shape (n_states, n_actions), or callable
+        Action probabilities per state (rows sum to 1), or ``obs -> action``.
+    gamma : float, default 0.99
+        Discount factor in [0, 1].
+    step_size : float or Schedule, default 0.1
+        :math:`\alpha \in (0, 1]` or a schedule (e.g. ``VisitCount(1.0)``).
+    initial_value : float or (float, float), default 0.0
+    seed : int, Generator or None
+        Seeds the draws of actions from a policy table.
+    state_encoder, action_encoder : optional
+        See :mod:`tdkit.encoders`."""
+
+
+class TD0(_PolicyLearner):
+    __doc__ = r"""TD(0) prediction of the state values of a given policy.
+
+    .. math::
+        V(S_t) \leftarrow V(S_t) + \alpha\,[R_{t+1} + \gamma V(S_{t+1}) - V(S_t)]
+
+    (just :math:`R_{t+1}` as target after ``terminated``). :meth:`fit_batch`
+    runs batch TD(0) over a fixed set of episodes, whose fixed point is the
+    certainty-equivalence estimate (Sutton & Barto 2018, Section 6.3).
+    """ + _POLICY_DOC + r"""
+
+    Raises
+    ------
+    ValueError
+        If the policy table has the wrong shape, negative or non-finite
+        entries, or a row that does not sum to 1, or another hyper-parameter
+        is out of range.
+
+    References
+    ----------
+    .. [1] Sutton, R. S. (1988). Learning to predict by the methods of
+       temporal differences. Machine Learning 3, 9-44.
+    .. [2] Sutton, R. S. & Barto, A. G. (2018). Reinforcement Learning: An
+       Introduction, 2nd ed., Section 6.1 (Eq. 6.2) and Section 6.3.
+
+    Examples
+    --------
+    >>> agent = TD0(3, 2, policy=[[0.5, 0.5]] * 3, gamma=1.0, step_size=0.5, seed=0)
+    >>> agent.observe(0, agent.act(0), 1.0, 1, False, False); agent.update()
+    (1.0,)
+    >>> agent.values(0)
+    0.5
+    """
+
+    def _learn(self, transition: Transition) -> tuple[float, ...]:
+        s, _a, r, s2, terminated, _truncated, _next_mask = transition
+        target = r if terminated else r + self.gamma * self._q[s2, 0]
+        return (self._td_step(self._q, self._visits, s, 0, target),)
+
+    def fit_batch(
+        self,
+        episodes: Iterable[Sequence[Sequence[Any]]],
+        *,
+        step_size: float | None = None,
+        tol: float = 1e-12,
+        max_sweeps: int = 100_000,
+    ) -> int:
+        r"""Batch TD(0): sweep a fixed set of episodes until the values stop changing.
+
+        Each sweep computes the TD error of every transition with the current
+        values and then moves each state by the step size times the mean error
+        of its transitions:
+
+        .. math::
+            V(s) \leftarrow V(s) + \alpha\,\frac{1}{n(s)}
+            \sum_{i: S_i = s} [R_i + \gamma V(S'_i) [\lnot\text{terminated}_i] - V(s)]
+
+        The fixed point makes every state's mean TD error zero, which is the
+        certainty-equivalence estimate: the exact value of the maximum
+        likelihood model of the data (Sutton & Barto 2018, Section 6.3).
+        Truncated transitions bootstrap. States that never start a
+        transition keep their value. Visit counts and ``steps_`` are not
+        changed.
+
+        Parameters
+        ----------
+        episodes : iterable of sequences of transitions
+            Each transition in ``observe``'s argument order
+            ``(obs, action, reward, next_obs, terminated, truncated)``.
+        step_size : float, optional
+            :math:`\alpha \in (0, 1]`; default the learner's constant step size.
+        tol : float, default 1e-12
+            Stop when no value changes by more than this in a sweep.
+        max_sweeps : int, default 100000
+
+        Returns
+        -------
+        int
+            Number of sweeps run.
+
+        Raises
+        ------
+        ValueError
+            On a malformed transition, a schedule step size without an
+            explicit ``step_size``, or no convergence within ``max_sweeps``.
+
+        Examples
+        --------
+        >>> agent = TD0(3, 1, policy=[[1.0]] * 3, gamma=1.0, step_size=0.5)
+        >>> agent.fit_batch([[(0, 0, 0.0, 1, False, False), (1, 0, 1.0, 2, True, False)]]) > 0
+        True
+        >>> agent.values_table.round(9).tolist()
+        [1.0, 1.0, 0.0]
+        """
+        name = f"{type(self).__name__}.fit_batch"
+        if step_size is None:
+            if self._alpha_const is None:
+                raise InvalidParameterError(
+                    f"{name}: the learner's step_size is a schedule ({self.step_size!r}); pass "
+                    "a constant step_size=... in (0, 1] for batch updating."
+                )
+            alpha = self._alpha_const
+        else:
+            alpha = check_in_range(name, "step_size", step_size, 0.0, 1.0, low_open=True)
+        tol = check_in_range(name, "tol", tol, 0.0, math.inf, low_open=True)
+        max_sweeps = check_positive_int(name, "max_sweeps", max_sweeps)
+        rows = []
+        for episode in episodes:
+            for item in episode:
+                if len(item) != 6:
+                    raise InvalidParameterError(
+                        f"{name}: each transition must be (obs, action, reward, next_obs, "
+                        f"terminated, truncated); got {item!r}."
+                    )
+                obs, action, reward, next_obs, terminated, _truncated = item
+                self._action_index(action)
+                r = float(reward)
+                if not math.isfinite(r):
+                    raise InvalidParameterError(f"{name}: reward must be finite; got {reward!r}.")
+                rows.append((self._encode(obs), r, self._encode(next_obs), not terminated))
+        if not rows:
+            return 0
+        s = np.array([row[0] for row in rows], dtype=np.intp)
+        r = np.array([row[1] for row in rows])
+        s2 = np.array([row[2] for row in rows], dtype=np.intp)
+        boot = np.array([row[3] for row in rows], dtype=bool)
+        counts = np.bincount(s, minlength=self.n_states)
+        seen = counts > 0
+        v = self._q[:, 0]
+        gamma = self.gamma
+        for sweep in range(1, max_sweeps + 1):
+            delta = r + gamma * np.where(boot, v[s2], 0.0) - v[s]
+            change = alpha * np.bincount(s, weights=delta, minlength=self.n_states)[seen]
+            change /= counts[seen]
+            v[seen] += change
+            if np.max(np.abs(change)) <= tol:
+                return sweep
+        raise InvalidParameterError(
+            f"{name}: no convergence within max_sweeps={max_sweeps} (last change "
+            f"{float(np.max(np.abs(change))):.3g} > tol={tol:g}); raise max_sweeps or tol, or "
+            "check that every episode can reach its end (gamma = 1 needs proper episodes)."
+        )
+
+
+class TDLambda(_PolicyLearner, _TraceLearner):
+    __doc__ = r"""TD(λ) prediction of the state values of a given policy, with eligibility traces.
+
+    .. math::
+        \delta_t = R_{t+1} + \gamma V(S_{t+1}) - V(S_t), \qquad
+        V \leftarrow V + \alpha\,\delta_t\,z_t, \qquad z \leftarrow \gamma\lambda z
+
+    with accumulating, replacing or dutch traces; ``trace="dutch"`` is true
+    online TD(λ) (van Seijen & Sutton 2014). Traces are sparse and cleared at
+    every episode end; no bootstrap after ``terminated``. With ``lam=0`` this
+    is :class:`TD0`.
+    """ + _POLICY_DOC + _TRACE_PARAMS_DOC + r"""
+    References
+    ----------
+    .. [1] Sutton, R. S. (1988). Learning to predict by the methods of
+       temporal differences. Machine Learning 3, 9-44.
+    .. [2] van Seijen, H. & Sutton, R. S. (2014). True online TD(lambda).
+       Proceedings of the 31st ICML.
+    .. [3] Sutton, R. S. & Barto, A. G. (2018). Reinforcement Learning: An
+       Introduction, 2nd ed., Section 12.2 (TD(λ)) and Section 12.5
+       (true online TD(λ)).
+
+    Examples
+    --------
+    >>> agent = TDLambda(3, 1, policy=[[1.0]] * 3, lam=1.0, gamma=1.0, step_size=1.0)
+    >>> agent.observe(0, 0, 0.0, 1, False, False); agent.update()
+    (0.0,)
+    >>> agent.observe(1, 0, 2.0, 2, True, False); agent.update()
+    (2.0,)
+    >>> agent.values_table.tolist()
+    [2.0, 2.0, 0.0]
+    """
+
+    _extra_params: ClassVar[tuple[str, ...]] = ("policy", "lam", "trace", "trace_cutoff")
+
+    def _column(self, a: int) -> int:
+        return 0
+
+    def _next_value(
+        self, s2: int, next_mask: np.ndarray | None, terminated: bool, truncated: bool
+    ) -> float:
+        return 0.0 if terminated else float(self._q[s2, 0])
