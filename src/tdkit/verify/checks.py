@@ -1,0 +1,821 @@
+r"""The verifier's checks: one small ``check_<property>`` function per property.
+
+Every check receives a :class:`Context` (the agent factory, the level, the
+seed and what kind of agent it builds) and returns one
+:class:`~tdkit.verify.CheckResult`. Checks probe agents only through the
+protocol (``act`` / ``observe`` / ``update``) plus ``q_values`` or
+``values`` when the agent has them, so they work on agents that are not tdkit
+classes. :data:`CHECKS` lists them in running order; ``check_protocol`` comes
+first because every other check relies on it.
+
+How the semantic checks decide
+------------------------------
+The probe problems (:mod:`tdkit.verify._probes`) are deterministic models in
+which a classic bug changes the fixed point by a wide margin, and in which the
+correct fixed point :math:`Q^*` does not depend on the agent's exploration.
+After training, an agent passes when
+
+* (agents with ``q_values``) the values of the optimal actions of the probe's
+  value states are within ``VALUE_TOLERANCE`` (5%) of the value scale of
+  :math:`Q^*`, and
+* (control agents) the greedy action (``act(obs, explore=False)``, called
+  several times to expose random ties) is optimal in every choice state, and
+* (prediction agents, ``values``) the state values are within the same
+  tolerance of the exact ones.
+
+Why 5%: in every probe the bug moves a checked value (or flips a greedy
+choice) by at least half of the value scale (see each probe's docstring), so
+5% separates the two by a factor of 10. A correct learner's error on a
+deterministic probe shrinks geometrically, like :math:`(1 - \alpha)^k` after
+:math:`k` updates of a pair and its successors; every checked pair receives
+at least ``PROBE_EPISODES / 8 = 50`` updates, so any step size
+:math:`\alpha \ge 0.1` reaches :math:`0.9^{50} \approx 0.5\%` (chains of
+bootstrapping multiply this by a polynomial factor of the chain length 5).
+Agents whose factories use much smaller step sizes need more episodes than
+the verifier gives them; this is stated in the failure message.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from .._errors import InvalidParameterError
+from ..dp import evaluate_policy, value_iteration
+from ..envs import problems
+from ..stats import chi2_sf
+from ._driver import (
+    AgentFault,
+    AgentKind,
+    Watcher,
+    agent_kind,
+    build_agent,
+    check_errors,
+    fmt,
+    read_q,
+    read_v,
+    run_episodes,
+    where,
+)
+from ._probes import (
+    Probe,
+    discount_probe,
+    masks_probe,
+    next_action_probe,
+    numeric_probe,
+    state_probe,
+    terminal_probe,
+    tie_probe,
+    truncation_probe,
+)
+from ._report import FAILED, PASSED, SKIPPED, CheckResult
+
+__all__ = [
+    "CHECKS",
+    "LEVELS",
+    "Context",
+    "check_convergence",
+    "check_discounted_returns",
+    "check_masks",
+    "check_next_action",
+    "check_numerical_hygiene",
+    "check_protocol",
+    "check_reproducibility",
+    "check_state_encoding",
+    "check_terminal",
+    "check_tie_breaking",
+    "check_truncation",
+    "check_name",
+]
+
+LEVELS = ("quick", "full")
+
+VALUE_TOLERANCE = 0.05
+"""Allowed error of checked values, as a fraction of max(1, largest |Q*|) (see module doc)."""
+
+PROBE_EPISODES = 800
+"""Training episodes on each semantic probe (episodes last 1 to 5 steps)."""
+
+GREEDY_CALLS = 5
+"""Greedy calls per choice state; random ties show up as disagreeing answers."""
+
+TIE_AGENTS = {"quick": 200, "full": 800}
+"""Fresh agents asked for a greedy action among tied actions."""
+
+TIE_P_VALUE = 1e-4
+"""The tie-breaking check fails when the chi-square p-value is below this."""
+
+CONVERGENCE_EPISODES = 3000
+"""Training episodes on the 4x4 gridworld (about 2.5 steps each once learned)."""
+"""The tie-breaking check fails when the chi-square p-value is below this."""
+
+
+@dataclass(frozen=True)
+class Context:
+    """What a check needs: the factory, the level, the seed and the agent's kind."""
+
+    make_agent: Callable[[Any, int], Any]
+    level: str = "quick"
+    seed: int = 0
+    kind: AgentKind | None = None
+
+    @property
+    def seeds(self) -> tuple[int, ...]:
+        """Seeds of the independent runs: one at level quick, three at level full."""
+        n = 1 if self.level == "quick" else 3
+        return tuple(self.seed + i for i in range(n))
+
+    @property
+    def prediction(self) -> bool:
+        return self.kind is not None and self.kind.prediction
+
+
+def check_name(check: Callable[..., CheckResult]) -> str:
+    """The name of a check function (``check_masks`` -> ``"masks"``)."""
+    return check.__name__.removeprefix("check_")
+
+
+def _result(name: str, status: str, message: str, **where_: Any) -> CheckResult:
+    return CheckResult(name, status, message, **where_)
+
+
+def _skip(name: str, reason: str) -> CheckResult:
+    return CheckResult(name, SKIPPED, reason)
+
+
+def _fault(name: str, fault: AgentFault, seed: int, env: str) -> CheckResult:
+    return CheckResult(name, FAILED, fault.message, seed=seed, env=env, where=fault.where)
+
+
+def _tolerance(values: np.ndarray) -> float:
+    scale = max(1.0, float(np.max(np.abs(values)))) if values.size else 1.0
+    return VALUE_TOLERANCE * scale
+
+
+# ---------------------------------------------------------------- judging a trained agent
+def _greedy(agent: Any, obs: Any, mask: np.ndarray | None, here: str) -> int:
+    try:
+        action = agent.act(obs, mask=mask, explore=False)
+    except Exception as exc:
+        raise AgentFault(f"act({obs!r}, explore=False) raised {type(exc).__name__}: {exc}",
+                         here) from exc
+    return int(action)
+
+
+def _judge(agent: Any, probe: Probe, kind: AgentKind, here: str) -> str | None:
+    """Return None if the trained ``agent`` got ``probe`` right, else why not."""
+    q = probe.q
+    bug_q = probe.bug_q
+    hint = f"; {probe.bug} would give {{bug}}" if probe.bug else ""
+    if kind.prediction:
+        states = list(probe.value_states)
+        expected = q[states, 0]
+        seen = read_v(agent, states, here)
+        tol = _tolerance(expected)
+        for s, e, v in zip(states, expected, seen, strict=True):
+            if not abs(v - e) <= tol:
+                bug = "" if bug_q is None else hint.format(bug=fmt(float(bug_q[s, 0])))
+                return f"V({s}) = {fmt(v)} but the exact value is {fmt(float(e))} ± {tol:g}{bug}"
+        return None
+    if kind.q_values:
+        states = list(probe.value_states)
+        expected = np.array([q[s, probe.optimal_actions(s)[0]] for s in states])
+        tol = _tolerance(expected)
+        rows = read_q(agent, states, here)
+        for s, e, row in zip(states, expected, rows, strict=True):
+            best = probe.optimal_actions(s)
+            a = int(best[np.argmax(row[best])])
+            v = float(row[a])
+            if not abs(v - e) <= tol:
+                bug = "" if bug_q is None else hint.format(bug=fmt(float(bug_q[s, a])))
+                return f"Q({s}, {a}) = {fmt(v)} but Q* = {fmt(float(e))} ± {tol:g}{bug}"
+    for s in probe.choice_states:
+        best = probe.optimal_actions(s)
+        mask = None if probe.masks is None else probe.masks[s].copy()
+        picks = [_greedy(agent, s, mask, here) for _ in range(GREEDY_CALLS)]
+        wrong = [a for a in picks if a not in best]
+        if wrong:
+            text = (
+                f"greedy action in state {s} is {wrong[0]} ({len(wrong)} of {GREEDY_CALLS} "
+                f"calls) but the optimal action is {fmt(best.tolist()).strip('[]')}"
+            )
+            if bug_q is not None:
+                text += f"; {probe.bug} would prefer {int(np.argmax(bug_q[s]))}"
+            return text
+    return None
+
+
+def _probe_check(
+    ctx: Context, name: str, probe: Probe, *, episodes: int = PROBE_EPISODES, what: str
+) -> CheckResult:
+    """Train on ``probe`` for each seed of the level and judge the result."""
+    for seed in ctx.seeds:
+        env = probe.make_env()
+        try:
+            agent = build_agent(ctx.make_agent, env, seed)
+            run_episodes(agent, env, episodes=episodes, seed=seed)
+            if env.violations:
+                episode, step, s, a = env.violations[0]
+                return _result(
+                    name, FAILED,
+                    f"act chose masked action {a} in state {s} (mask "
+                    f"{probe.masks[s].tolist()}); {len(env.violations)} masked choice(s) in "
+                    f"{episodes} episodes",
+                    seed=seed, env=probe.name, where=where(episode, step),
+                )
+            problem = _judge(agent, probe, ctx.kind, f"after {episodes} episodes")
+        except AgentFault as fault:
+            return _fault(name, fault, seed, probe.name)
+        if problem is not None:
+            return _result(
+                name, FAILED, problem + (
+                    f" (after {episodes} training episodes; a factory with a step size below "
+                    "0.1 may need more)" if "±" in problem else ""
+                ),
+                seed=seed, env=probe.name, where=f"after {episodes} episodes",
+            )
+    runs = f"{len(ctx.seeds)} seed(s) x {episodes} episodes on {probe.name}"
+    return _result(name, PASSED, f"{what} ({runs})")
+
+
+# ---------------------------------------------------------------- the checks
+def check_protocol(ctx: Context) -> CheckResult:
+    """``act``/``observe``/``update`` exist and answer correctly over a few episodes.
+
+    ``make_agent(env, seed)`` returns an agent; ``update()`` with nothing
+    observed returns an empty sequence; ``act`` returns actions of the
+    environment's action space (also with ``explore=False``); ``update``
+    returns a sequence of floats; ``q_values(obs)`` (when present) has one
+    finite entry per action and ``values(obs)`` (when present) is a finite
+    float.
+    """
+    name = "protocol"
+    probe = discount_probe()
+    env = probe.make_env()
+    seed = ctx.seed
+    try:
+        agent = build_agent(ctx.make_agent, env, seed)
+        missing = [m for m in ("act", "observe", "update") if not callable(getattr(agent, m, None))]
+        if missing:
+            return _result(
+                name, FAILED,
+                f"{type(agent).__name__} has no callable {', '.join(missing)}; an agent needs "
+                "act(obs, *, mask=None, explore=True), observe(obs, action, reward, next_obs, "
+                "terminated, truncated, *, next_mask=None) and update()",
+                seed=seed, env=probe.name,
+            )
+        first = check_errors(agent.update(), "before any observe")
+        if first:
+            return _result(
+                name, FAILED,
+                f"update() with nothing observed returned {first!r}; it must return () when "
+                "nothing is pending", seed=seed, env=probe.name, where="before any observe",
+            )
+        obs, _ = env.reset(seed=seed)
+        kind = agent_kind(agent, obs)
+        notes = []
+        if kind.q_values:
+            row = read_q(agent, [obs])[0]
+            if row.shape != (env.action_space.n,) or not np.isfinite(row).all():
+                return _result(
+                    name, FAILED,
+                    f"q_values({obs!r}) returned {fmt(row)}; expected {env.action_space.n} "
+                    "finite values, one per action", seed=seed, env=probe.name,
+                )
+            notes.append(f"q_values rows of {row.shape[0]}")
+        if kind.values:
+            value = read_v(agent, [obs])[0]
+            if not np.isfinite(value):
+                return _result(name, FAILED, f"values({obs!r}) returned {value!r}",
+                               seed=seed, env=probe.name)
+            notes.append("values(obs) floats")
+        trace = run_episodes(agent, env, episodes=5, seed=seed)
+        obs, _ = env.reset(seed=seed)
+        greedy = _greedy(agent, obs, None, "after 5 episodes")
+        if not env.action_space.contains(greedy):
+            return _result(name, FAILED, f"act({obs!r}, explore=False) returned {greedy!r}",
+                           seed=seed, env=probe.name)
+    except AgentFault as fault:
+        return _fault(name, fault, seed, probe.name)
+    message = (
+        f"{trace.steps} steps over 5 episodes: valid actions, update() returns floats"
+        + (f"; {', '.join(notes)}" if notes else "")
+    )
+    return _result(name, PASSED, message)
+
+
+class _Recorder(Watcher):
+    def __init__(self) -> None:
+        self.places: list[str] = []
+
+    def after_act(self, episode: int, step: int, obs: Any, action: Any) -> None:
+        self.places.append(where(episode, step))
+
+
+def _run_record(ctx: Context, probe: Probe, seed: int, episodes: int) -> tuple:
+    env = probe.make_env()
+    agent = build_agent(ctx.make_agent, env, seed)
+    recorder = _Recorder()
+    trace = run_episodes(agent, env, episodes=episodes, seed=seed, watcher=recorder)
+    states = list(range(probe.mdp.n_states))
+    if ctx.kind.q_values:
+        table = read_q(agent, states)
+    elif ctx.kind.values:
+        table = read_v(agent, states)
+    else:
+        table = None
+    return trace, recorder.places, table
+
+
+def check_reproducibility(ctx: Context) -> CheckResult:
+    """Same seed, same run; different seeds, different runs where ``act`` is random.
+
+    Two agents built with the same seed and trained on the same episodes must
+    take the same actions, return the same TD errors and end with the same
+    values. An agent built with another seed must act differently, unless
+    ``act`` of a fresh agent is deterministic (20 calls in one state give one
+    action); an agent whose act is random but ignores the seed (global random
+    state, a fixed internal seed) fails.
+    """
+    name = "reproducibility"
+    probe = state_probe()
+    episodes = 60
+    seed = ctx.seed
+    try:
+        first, places, table_1 = _run_record(ctx, probe, seed, episodes)
+        second, _, table_2 = _run_record(ctx, probe, seed, episodes)
+        for i, (a, b) in enumerate(zip(first.actions, second.actions, strict=False)):
+            if a != b:
+                return _result(
+                    name, FAILED,
+                    f"two agents built with seed {seed} chose different actions ({a} vs {b}) "
+                    "on the same episode: the run is not reproducible (global random state?)",
+                    seed=seed, env=probe.name, where=places[i],
+                )
+        if len(first.actions) != len(second.actions) or first.errors != second.errors:
+            return _result(
+                name, FAILED,
+                f"two agents built with seed {seed} returned different TD errors from update()",
+                seed=seed, env=probe.name, where=f"after {episodes} episodes",
+            )
+        if table_1 is not None and not np.array_equal(table_1, table_2):
+            return _result(
+                name, FAILED,
+                f"two agents built with seed {seed} ended with different values "
+                f"({fmt(table_1.ravel()[:4])}... vs {fmt(table_2.ravel()[:4])}...)",
+                seed=seed, env=probe.name, where=f"after {episodes} episodes",
+            )
+        other, _, _ = _run_record(ctx, probe, seed + 1, episodes)
+        if other.actions != first.actions:
+            return _result(
+                name, PASSED,
+                f"seed {seed} twice: identical actions, TD errors and values over "
+                f"{len(first.actions)} steps; seed {seed + 1} acts differently",
+            )
+        env = probe.make_env()
+        agent = build_agent(ctx.make_agent, env, seed)
+        obs, _ = env.reset(seed=seed)
+        seen = {int(agent.act(obs)) for _ in range(20)}
+    except AgentFault as fault:
+        return _fault(name, fault, seed, probe.name)
+    except Exception as exc:  # act raised in the randomness probe
+        return _result(name, FAILED, f"act raised {type(exc).__name__}: {exc}",
+                       seed=seed, env=probe.name)
+    if len(seen) > 1:
+        return _result(
+            name, FAILED,
+            f"act is random (a fresh agent chose {sorted(seen)} in 20 calls in state {obs}) "
+            f"but seeds {seed} and {seed + 1} gave identical actions over "
+            f"{len(first.actions)} steps: the seed does not drive the agent's randomness",
+            seed=seed, env=probe.name,
+        )
+    return _result(
+        name, PASSED,
+        f"seed {seed} twice: identical runs over {len(first.actions)} steps; act of a fresh "
+        "agent is deterministic, so different seeds need not differ",
+    )
+
+
+def check_tie_breaking(ctx: Context) -> CheckResult:
+    r"""Greedy ties are broken uniformly: no preference for low (or any) action indices.
+
+    ``N`` fresh agents (seeds ``seed * N`` to ``seed * N + N - 1``; ``N`` =
+    200 quick, 800 full) each pick a greedy action in a state whose 4 actions
+    all have the same value. Under uniform tie-breaking the counts are
+    multinomial with equal cells, and the statistic
+    :math:`X^2 = \sum_a (n_a - N/4)^2 / (N/4)` is chi-square with 3 degrees of
+    freedom (every expected count is at least 50, far above the usual
+    requirement of 5; Cochran 1954, common practice). The check fails when
+    :math:`P(\chi^2_3 > X^2) < 10^{-4}`, so a correct agent fails with
+    probability 1e-4 for a given seed (and deterministically never for the
+    seeds fixed in tdkit's tests). "First index wins" gives
+    :math:`X^2 = 3N \geq 600`, a p-value below 1e-100.
+
+    An agent initialised with random values passes: over fresh agents its
+    argmax is uniform too.
+    """
+    name = "tie_breaking"
+    if ctx.prediction:
+        return _skip(name, "prediction learner: act follows the given policy, not greedy ties")
+    n = TIE_AGENTS[ctx.level]
+    probe = tie_probe(4)
+    env = probe.make_env()
+    obs, _ = env.reset(seed=ctx.seed)
+    counts = np.zeros(4, dtype=int)
+    seeds = range(ctx.seed * n, ctx.seed * n + n)
+    try:
+        for s in seeds:
+            agent = build_agent(ctx.make_agent, env, s)
+            counts[_greedy(agent, obs, None, f"fresh agent with seed {s}")] += 1
+    except AgentFault as fault:
+        return _fault(name, fault, s, probe.name)
+    expected = n / 4
+    statistic = float(((counts - expected) ** 2 / expected).sum())
+    p = chi2_sf(statistic, 3)
+    text = (
+        f"greedy choices of {n} fresh agents among 4 tied actions: {counts.tolist()}; "
+        f"chi-square {statistic:.1f}, p = {p:.2g}"
+    )
+    if p < TIE_P_VALUE:
+        return _result(
+            name, FAILED,
+            text + f" < {TIE_P_VALUE:g}: ties are not broken uniformly at random"
+            + (" (the lowest index wins)" if counts[0] == n else ""),
+            seed=ctx.seed, env=probe.name, where=f"agent seeds {seeds.start}..{seeds.stop - 1}",
+        )
+    return _result(name, PASSED, text)
+
+
+def check_masks(ctx: Context) -> CheckResult:
+    """A masked action is never chosen and never enters a target.
+
+    Masks arrive in ``info["action_mask"]`` and are passed to ``act(obs,
+    mask=...)`` and ``observe(..., next_mask=...)``. See
+    :func:`tdkit.verify._probes.masks_probe`.
+    """
+    if ctx.prediction:
+        return _skip("masks", "prediction learner: act follows the given policy")
+    return _probe_check(ctx, "masks", masks_probe(),
+                        what="masked actions never chosen; values and choices ignore them")
+
+
+def check_terminal(ctx: Context) -> CheckResult:
+    """No bootstrap past ``terminated``, even when the final observation is a live state."""
+    return _probe_check(ctx, "terminal", terminal_probe(ctx.prediction),
+                        what="no bootstrap from the observation after terminated")
+
+
+def check_truncation(ctx: Context) -> CheckResult:
+    """Bootstrap past ``truncated``: a time limit is not the end of the task."""
+    return _probe_check(ctx, "truncation", truncation_probe(ctx.prediction),
+                        what="values bootstrap across the time limit")
+
+
+def check_discounted_returns(ctx: Context) -> CheckResult:
+    """Values equal the discounted return along a deterministic chain (gamma = 0.8)."""
+    return _probe_check(ctx, "discounted_returns", discount_probe(ctx.prediction),
+                        what="values discount by gamma = 0.8 per step")
+
+
+def check_state_encoding(ctx: Context) -> CheckResult:
+    """Distinct observations keep distinct values (no encoder collisions)."""
+    return _probe_check(ctx, "state_encoding", state_probe(ctx.prediction),
+                        what="8 observations keep their own values and best actions")
+
+
+class _NextActionWatcher(Watcher):
+    """Reads which action a one-step target bootstrapped on, and checks it is taken next."""
+
+    def __init__(self, agent: Any, gamma: float, states: list[int]) -> None:
+        self.agent = agent
+        self.gamma = gamma
+        self.states = states
+        self.before: np.ndarray | None = None
+        self.expect: tuple[int, int, str] | None = None  # (state, action, where)
+        self.decoded = 0
+        self.on_policy = 0
+        self.mismatch: tuple[str, int, int, int] | None = None
+
+    def after_act(self, episode: int, step: int, obs: Any, action: Any) -> None:
+        if self.expect is not None and self.mismatch is None:
+            s, a, here = self.expect
+            if int(obs) == s and int(action) != a:
+                self.mismatch = (here, s, a, int(action))
+            else:
+                self.on_policy += 1
+        self.expect = None
+
+    def before_observe(self, episode: int, step: int, transition: tuple) -> None:
+        self.before = read_q(self.agent, self.states)
+
+    def after_update(self, episode: int, step: int, transition: tuple, errors: tuple) -> None:
+        obs, action, reward, next_obs, terminated, truncated, _ = transition
+        if terminated or truncated or len(errors) != 1:
+            return
+        s, a, s2 = int(obs), int(action), int(next_obs)
+        if s == s2:
+            return
+        after = read_q(self.agent, self.states)
+        changed = np.argwhere(after != self.before)
+        if changed.shape[0] != 1 or tuple(changed[0]) != (self.states.index(s), a):
+            return
+        row = self.before[self.states.index(s2)]
+        target = self.before[self.states.index(s), a] + errors[0]
+        boot = (target - float(reward)) / self.gamma
+        tol = 1e-9 * (1.0 + float(np.max(np.abs(row))) + abs(boot))
+        hits = np.flatnonzero(np.abs(row - boot) <= tol)
+        if hits.size != 1 or np.sort(np.abs(row - row[hits[0]]))[1] <= 2 * tol:
+            return  # no unique match, or tied values: the target does not name an action
+        self.decoded += 1
+        k = int(hits[0])
+        if row[k] < row.max() - tol:  # bootstrapped on a non-greedy action: on-policy sample
+            self.expect = (s2, k, where(episode, step))
+
+
+def check_next_action(ctx: Context) -> CheckResult:
+    r"""A SARSA-type target bootstraps on the action the agent then takes.
+
+    On a probe where state 1's three actions have well separated values, the
+    verifier reads which action a one-step target bootstrapped on: after a
+    transition 0 -> 1, ``update()`` returns :math:`\delta = R + \gamma
+    Q(1, a') - Q(0, a)`, so :math:`Q(1, a') = (Q(0, a) + \delta - R) /
+    \gamma` with ``Q`` read by ``q_values`` before the update. Only updates
+    that change exactly the entry :math:`(0, a)` and return one TD error are
+    read, and only an exact match (to 1e-9 relative) with one entry of
+    :math:`Q(1, \cdot)` counts. When that entry is *not* greedy the agent
+    sampled its next action (an on-policy target), and the next ``act(1)``
+    must return it.
+
+    Applies to control agents with ``q_values``. Agents whose targets never
+    name a non-greedy action (Q-learning: the greedy one; Expected SARSA: an
+    average) pass; agents none of whose updates can be read this way
+    (multi-step returns, planning) are skipped.
+    """
+    name = "next_action"
+    if ctx.prediction:
+        return _skip(name, "prediction learner: no action-value target")
+    if not ctx.kind.q_values:
+        return _skip(name, "needs q_values(obs) to read which action a target bootstrapped on")
+    probe = next_action_probe()
+    decoded = on_policy = 0
+    for seed in ctx.seeds:
+        env = probe.make_env()
+        try:
+            agent = build_agent(ctx.make_agent, env, seed)
+            watcher = _NextActionWatcher(agent, probe.mdp.gamma, [0, 1])
+            run_episodes(agent, env, episodes=PROBE_EPISODES, seed=seed, watcher=watcher)
+        except AgentFault as fault:
+            return _fault(name, fault, seed, probe.name)
+        if watcher.mismatch is not None:
+            here, s, a, taken = watcher.mismatch
+            return _result(
+                name, FAILED,
+                f"the update bootstrapped on Q({s}, {a}) (a non-greedy, sampled next action) "
+                f"but the next act({s}) returned {taken}: the target must use the action "
+                "actually taken",
+                seed=seed, env=probe.name, where=here,
+            )
+        decoded += watcher.decoded
+        on_policy += watcher.on_policy
+    if decoded == 0:
+        return _skip(
+            name,
+            "no update could be read as a one-step bootstrap (multi-step or planning "
+            "updates, or TD errors not of the form target - Q(s, a))",
+        )
+    if on_policy == 0:
+        return _result(
+            name, PASSED,
+            f"{decoded} one-step targets read; all bootstrap on a greedy action (an off-policy "
+            "target), so no sampled next action to honour",
+        )
+    return _result(
+        name, PASSED,
+        f"{on_policy} targets bootstrapped on a sampled non-greedy next action, and act took "
+        f"that action every time ({decoded} targets read)",
+    )
+
+
+class _FiniteWatcher(Watcher):
+    def __init__(self, agent: Any, kind: AgentKind, states: list[int]) -> None:
+        self.agent = agent
+        self.kind = kind
+        self.states = states
+
+    def after_update(self, episode: int, step: int, transition: tuple, errors: tuple) -> None:
+        bad = [e for e in errors if not np.isfinite(e)]
+        if bad:
+            raise AgentFault(f"update() returned the TD error {bad[0]!r}", where(episode, step))
+
+    def after_episode(self, episode: int, steps: int) -> None:
+        here = f"end of episode {episode}"
+        if self.kind.q_values:
+            table = read_q(self.agent, self.states, here)
+        elif self.kind.values:
+            table = read_v(self.agent, self.states, here)
+        else:
+            return
+        if not np.isfinite(table).all():
+            bad = np.argwhere(~np.isfinite(table))[0]
+            raise AgentFault(
+                f"value {table[tuple(bad)]!r} for state {self.states[int(bad[0])]} is not finite",
+                here,
+            )
+
+
+def check_numerical_hygiene(ctx: Context) -> CheckResult:
+    """No NaN or inf in TD errors or values after rewards of magnitude up to 1e150.
+
+    The rewards' squares (1e300) still fit in a float64, so only an overflow
+    the agent brings in itself (a float32 table, an unstabilised exponential,
+    an accumulating sum of squares) fails this check.
+    """
+    name = "numerical_hygiene"
+    probe = numeric_probe(ctx.prediction)
+    episodes = 40
+    for seed in ctx.seeds:
+        env = probe.make_env()
+        try:
+            agent = build_agent(ctx.make_agent, env, seed)
+            watcher = _FiniteWatcher(agent, ctx.kind, [0, 1, 2])
+            run_episodes(agent, env, episodes=episodes, seed=seed, watcher=watcher)
+        except AgentFault as fault:
+            return _fault(name, fault, seed, probe.name)
+    return _result(
+        name, PASSED,
+        f"TD errors and values stayed finite with rewards of magnitude up to 1e150 "
+        f"({len(ctx.seeds)} seed(s) x {episodes} episodes)",
+    )
+
+
+# ---------------------------------------------------------------- convergence
+@dataclass(frozen=True)
+class _Problem:
+    name: str
+    mdp: Any
+    episodes: int
+    max_steps: int | None
+    source: str
+
+
+def _convergence_problems(ctx: Context) -> list[_Problem]:
+    walk = _Problem(
+        "random-walk-5", problems.random_walk(5), 600, None,
+        "Sutton & Barto (2018), Example 6.2: true values 1/6 ... 5/6",
+    )
+    if ctx.prediction:
+        found = [walk]
+        if ctx.level == "full":
+            found.append(_Problem(
+                "discounted-chain", discount_probe(True).mdp, 400, None,
+                "deterministic chain, values 0.8^k",
+            ))
+        return found
+    grid = _Problem(
+        "gridworld-4x4", problems.gridworld_4x4(), CONVERGENCE_EPISODES, 100,
+        "Sutton & Barto (2018), Example 4.1 (undiscounted, -1 per step)",
+    )
+    found = [grid]
+    if ctx.level == "full":
+        found.append(walk)
+    return found
+
+
+class _Averager(Watcher):
+    """Averages the agent's values after every update of the last quarter of the episodes.
+
+    Iterate averaging (Polyak & Juditsky 1992): with a constant step size the
+    values keep fluctuating around their fixed point; their time average does
+    not.
+    """
+
+    def __init__(self, agent: Any, kind: AgentKind, states: list[int], episodes: int) -> None:
+        self.agent = agent
+        self.kind = kind
+        self.states = states
+        self.start = episodes - episodes // 4
+        self.total: np.ndarray | None = None
+        self.count = 0
+
+    def after_update(self, episode: int, step: int, transition: tuple, errors: tuple) -> None:
+        if episode < self.start:
+            return
+        if self.kind.q_values:
+            table = read_q(self.agent, self.states)
+        elif self.kind.values:
+            table = read_v(self.agent, self.states)
+        else:
+            return
+        self.total = table if self.total is None else self.total + table
+        self.count += 1
+
+    @property
+    def mean(self) -> np.ndarray | None:
+        return None if self.total is None else self.total / self.count
+
+
+def _judge_convergence(
+    agent: Any, problem: _Problem, kind: AgentKind, averaged: np.ndarray | None
+) -> str | None:
+    mdp = problem.mdp
+    solution = value_iteration(mdp, tol=1e-10)
+    live = [int(s) for s in np.flatnonzero(~mdp.terminal)]
+    starts = [int(s) for s in np.flatnonzero(mdp.initial > 0)]
+    v_star = solution.v
+    tol = _tolerance(v_star[live])
+    here = f"after {problem.episodes} episodes"
+    if averaged is not None:
+        estimate = averaged.max(axis=1) if averaged.ndim == 2 else averaged
+        for i, s in enumerate(live):
+            if not abs(estimate[i] - v_star[s]) <= tol:
+                label = "V" if kind.prediction else "max_a Q"
+                return (
+                    f"{label}({s}) = {fmt(float(estimate[i]))} (averaged over the last quarter "
+                    f"of training) but the exact value is {fmt(float(v_star[s]))} ± {tol:g}"
+                )
+    if kind.prediction:
+        return None
+    policy = np.zeros(mdp.n_states, dtype=int)
+    for s in live:
+        policy[s] = _greedy(agent, s, None, here)
+    try:
+        v_pi = evaluate_policy(mdp, policy)
+    except InvalidParameterError:
+        return "the greedy policy never reaches a terminal state from some states (it loops)"
+    for s in starts:
+        if v_pi[s] < v_star[s] - tol:
+            best = np.flatnonzero(solution.q[s] >= solution.q[s].max() - 1e-9).tolist()
+            return (
+                f"the greedy policy is worth {fmt(float(v_pi[s]))} from start state {s}, the "
+                f"optimum {fmt(float(v_star[s]))} (tolerance {tol:g}); greedy action "
+                f"{policy[s]}, optimal {best}"
+            )
+    return None
+
+
+def check_convergence(ctx: Context) -> CheckResult:
+    r"""On small problems with known :math:`Q^*`, the agent learns the optimal answer.
+
+    Control agents: after training, the greedy policy (``act(s,
+    explore=False)``) is evaluated exactly (:func:`tdkit.dp.evaluate_policy`)
+    and must be worth :math:`v^*` from every start state, to within the
+    tolerance; agents with ``q_values`` must also have
+    :math:`\max_a Q(s, a)` within the tolerance of :math:`v^*(s)` in every
+    live state. Prediction agents: ``values(s)`` within the tolerance of the
+    exact :math:`v(s)` (the problems have one action, so the policy is
+    fixed). Values are averaged over the last quarter of the episodes
+    (iterate averaging; Polyak & Juditsky 1992), which removes most of the
+    noise of a constant step size on stochastic problems.
+
+    Tolerance: 5% of ``max(1, max |v*|)`` (stated, common practice); a
+    suboptimal action in the 4x4 gridworld costs at least 1 = 33% of its
+    value scale 3, so greedy optimality is checked strictly there. Level
+    quick: one problem, one seed; full: more problems, three seeds.
+    On-policy agents converge to the values of their exploring policy, so
+    their factories should decay exploration (for example
+    ``exploration=tdkit.schedules.Exponential(0.3, 0.999)``).
+    """
+    name = "convergence"
+    checked = []
+    for problem in _convergence_problems(ctx):
+        for seed in ctx.seeds:
+            env = problem.mdp.to_env(problem.max_steps)
+            try:
+                agent = build_agent(ctx.make_agent, env, seed)
+                live = [int(s) for s in np.flatnonzero(~problem.mdp.terminal)]
+                averager = _Averager(agent, ctx.kind, live, problem.episodes)
+                run_episodes(agent, env, episodes=problem.episodes, seed=seed, watcher=averager)
+                text = _judge_convergence(agent, problem, ctx.kind, averager.mean)
+            except AgentFault as fault:
+                return _fault(name, fault, seed, problem.name)
+            if text is not None:
+                return _result(name, FAILED, f"{text} [{problem.source}]", seed=seed,
+                               env=problem.name, where=f"after {problem.episodes} episodes")
+        checked.append(problem.name)
+    what = "values" if ctx.prediction else "greedy policy optimal" + (
+        " and values" if ctx.kind.q_values else ""
+    )
+    return _result(
+        name, PASSED,
+        f"{what} within 5% of the exact solution on {', '.join(checked)} "
+        f"({len(ctx.seeds)} seed(s) each)",
+    )
+
+
+#: The checks in running order; check_protocol first (the others rely on it).
+CHECKS: tuple[Callable[[Context], CheckResult], ...] = (
+    check_protocol,
+    check_reproducibility,
+    check_tie_breaking,
+    check_masks,
+    check_terminal,
+    check_truncation,
+    check_discounted_returns,
+    check_next_action,
+    check_state_encoding,
+    check_numerical_hygiene,
+    check_convergence,
+)
