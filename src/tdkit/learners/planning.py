@@ -229,10 +229,11 @@ class DynaQPlus(DynaQ):
 class PrioritizedSweeping(_PlanningLearner):
     __doc__ = r"""Prioritized sweeping: plan backwards from the pairs whose values changed most.
 
-    After the real update of :math:`(S, A)`, every pair :math:`(\bar S, \bar A)`
-    the model predicts to lead to :math:`S` gets the priority
+    After the real update of :math:`(S, A)`, the pair itself (its model just
+    changed) and every pair :math:`(\bar S, \bar A)` the model predicts to
+    lead to :math:`S` get the priority
     :math:`P = |\,\bar G - Q(\bar S, \bar A)|`, where :math:`\bar G` is the
-    model's target for the pair, and enters the queue if
+    model's target for the pair, and enter the queue if
     :math:`P >` ``threshold`` (a pair already queued keeps the larger
     priority). Then up to ``planning_steps`` times: pop the pair of highest
     priority, update it towards its model target, and queue its predecessors
@@ -305,15 +306,16 @@ class PrioritizedSweeping(_PlanningLearner):
             target += p * (r if terminated else r + gamma * masked_max(q[s2], mask))
         return target
 
+    def _queue(self, pair: tuple[int, int]) -> None:
+        """Queue ``pair`` with priority |model target - Q| if it exceeds the threshold."""
+        priority = abs(self._model_target(*pair) - self._q[pair])
+        if priority > self.threshold and priority > self._queued.get(pair, 0.0):
+            self._queued[pair] = priority
+            heapq.heappush(self._heap, (-priority, next(self._order), *pair))
+
     def _queue_predecessors(self, s: int) -> None:
-        q = self._q
-        queued = self._queued
-        threshold = self.threshold
         for pair in self._model.predecessors_of(s):
-            priority = abs(self._model_target(*pair) - q[pair])
-            if priority > threshold and priority > queued.get(pair, 0.0):
-                queued[pair] = priority
-                heapq.heappush(self._heap, (-priority, next(self._order), *pair))
+            self._queue(pair)
 
     def _pop(self) -> tuple[int, int] | None:
         heap = self._heap
@@ -327,6 +329,7 @@ class PrioritizedSweeping(_PlanningLearner):
 
     def _after_real_step(self, s: int, a: int, s2: int, next_mask: np.ndarray | None) -> None:
         if self.planning_steps:
+            self._queue((s, a))  # its model changed: what remains of its error
             self._queue_predecessors(s)
 
     def _plan(self) -> None:
