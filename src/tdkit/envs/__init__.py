@@ -3,3 +3,10 @@
 from .adapters import EnvAdapter, adapt
 
 __all__ = ["EnvAdapter", "adapt"]
+
+# Finite models and the catalogue of published problems (issue 3).
+from . import problems
+from .finite import FiniteMDP
+from .model_env import FiniteMDPEnv
+
+__all__ += ["FiniteMDP", "FiniteMDPEnv", "problems"]

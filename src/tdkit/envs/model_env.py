@@ -1,0 +1,109 @@
+"""A gymnasium environment that samples a :class:`~tdkit.envs.finite.FiniteMDP`."""
+
+from __future__ import annotations
+
+import numbers
+from typing import TYPE_CHECKING, Any
+
+import gymnasium
+import numpy as np
+
+from .._errors import EnvironmentProtocolError, InvalidParameterError
+
+if TYPE_CHECKING:
+    from .finite import FiniteMDP
+
+__all__ = ["FiniteMDPEnv"]
+
+
+class FiniteMDPEnv(gymnasium.Env):
+    """Sample a finite MDP through the gymnasium ``reset``/``step`` interface.
+
+    Built by :meth:`FiniteMDP.to_env`. Observations are state indices in
+    ``Discrete(S)``, actions are indices in ``Discrete(A)``.
+
+    * ``reset(seed=...)`` seeds the env's own ``np_random`` (gymnasium's
+      contract) and draws the start state from ``mdp.initial``.
+    * ``step(a)`` draws the successor from the model's successor slots with
+      one uniform number from ``np_random``; the reward is the per-transition
+      reward when the model has one, else the expected reward ``R[s, a]``.
+      ``terminated`` is true on entering a terminal state. ``truncated`` is
+      true when ``max_steps`` steps have been taken and the episode did not
+      terminate on that step.
+    * Stepping a terminal state keeps it there with reward 0.
+
+    Attributes
+    ----------
+    mdp : FiniteMDP
+        The sampled model.
+    gamma : float
+        Its discount (``env.unwrapped.gamma``).
+    max_steps : int or None
+        Truncation horizon.
+    """
+
+    metadata: dict[str, Any] = {"render_modes": []}  # noqa: RUF012 (gymnasium's convention)
+
+    def __init__(self, mdp: FiniteMDP, *, max_steps: int | None = None) -> None:
+        super().__init__()
+        self.mdp = mdp
+        self.gamma = mdp.gamma
+        self.max_steps = max_steps
+        self.observation_space = gymnasium.spaces.Discrete(mdp.n_states)
+        self.action_space = gymnasium.spaces.Discrete(mdp.n_actions)
+        next_states, probs, rewards = mdp.successors
+        cumulative = np.cumsum(probs, axis=2)
+        # Exactly 1 at the last positive slot (trailing zero slots share the value),
+        # so a uniform draw in [0, 1) never lands on a zero-probability slot.
+        cumulative /= cumulative[:, :, -1:]
+        self._cumulative = cumulative
+        self._next_states = next_states
+        self._rewards = rewards
+        self._terminal = mdp.terminal
+        self._initial_cumulative = np.cumsum(mdp.initial)
+        self._initial_cumulative /= self._initial_cumulative[-1]
+        self._n_actions = mdp.n_actions
+        self._state: int | None = None
+        self._steps = 0
+
+    def reset(
+        self, *, seed: int | None = None, options: dict[str, Any] | None = None
+    ) -> tuple[int, dict[str, Any]]:
+        """Start an episode; ``seed`` reseeds ``np_random`` (gymnasium's contract)."""
+        super().reset(seed=seed)
+        u = self.np_random.random()
+        self._state = int(np.searchsorted(self._initial_cumulative, u, side="right"))
+        self._steps = 0
+        return self._state, {}
+
+    def step(self, action: Any) -> tuple[int, float, bool, bool, dict[str, Any]]:
+        """Take ``action``; return ``(state, reward, terminated, truncated, info)``."""
+        s = self._state
+        if s is None:
+            raise EnvironmentProtocolError(
+                "FiniteMDPEnv.step: call reset() before step()."
+            )
+        if (
+            isinstance(action, bool)
+            or not isinstance(action, numbers.Integral)
+            or not 0 <= action < self._n_actions
+        ):
+            raise InvalidParameterError(
+                f"FiniteMDPEnv.step: action must be an integer in [0, {self._n_actions}); "
+                f"got {action!r}."
+            )
+        if self._terminal[s]:
+            return s, 0.0, True, False, {}
+        row = self._cumulative[s, action]
+        k = int(np.searchsorted(row, self.np_random.random(), side="right"))
+        if k >= row.shape[0]:  # pragma: no cover - only if rounding pushes u past 1
+            k = row.shape[0] - 1
+        nxt = int(self._next_states[s, action, k])
+        reward = float(self._rewards[s, action, k])
+        self._state = nxt
+        self._steps += 1
+        terminated = bool(self._terminal[nxt])
+        truncated = (
+            not terminated and self.max_steps is not None and self._steps >= self.max_steps
+        )
+        return nxt, reward, terminated, truncated, {}
