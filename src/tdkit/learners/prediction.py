@@ -74,10 +74,12 @@ class _PolicyLearner(TabularAgent):
         try:
             table = np.array(policy, dtype=np.float64)
         except (TypeError, ValueError):
+            table = None
+        if table is None or table.ndim != 2:
             raise InvalidParameterError(
                 f"{name}: policy must be an (n_states, n_actions) probability table or a "
                 f"callable obs -> action; got {policy!r:.80}."
-            ) from None
+            )
         shape = (self.n_states, self.n_actions)
         if table.shape != shape:
             raise InvalidParameterError(
