@@ -299,13 +299,21 @@ def betainc(a: float, b: float, x: float) -> float:
         raise InvalidParameterError(f"betainc: x must be in [0, 1]; got {x!r}.")
     if x == 0.0 or x == 1.0:
         return x
+    return _betainc(a, b, x, 1.0 - x)
+
+
+def _betainc(a: float, b: float, x: float, y: float) -> float:
+    """:math:`I_x(a, b)` with ``y = 1 - x`` given separately (exact when x is near 1)."""
+    if y <= 0.0:
+        return 1.0
+    if x <= 0.0:
+        return 0.0
     log_front = (
-        math.lgamma(a + b) - math.lgamma(a) - math.lgamma(b)
-        + a * math.log(x) + b * math.log1p(-x)
+        math.lgamma(a + b) - math.lgamma(a) - math.lgamma(b) + a * math.log(x) + b * math.log(y)
     )
     if x < (a + 1.0) / (a + b + 2.0):
         return math.exp(log_front) * _beta_continued_fraction(a, b, x) / a
-    return 1.0 - math.exp(log_front) * _beta_continued_fraction(b, a, 1.0 - x) / b
+    return 1.0 - math.exp(log_front) * _beta_continued_fraction(b, a, y) / b
 
 
 def gammaincc(a: float, x: float) -> float:
@@ -377,7 +385,8 @@ def student_t_sf(t: float, df: float) -> float:
         raise InvalidParameterError("student_t_sf: t is NaN.")
     if math.isinf(t):
         return 0.0 if t > 0 else 1.0
-    tail = 0.5 * betainc(df / 2.0, 0.5, df / (df + t * t))
+    t2 = t * t
+    tail = 0.5 * _betainc(df / 2.0, 0.5, df / (df + t2), t2 / (df + t2))
     return tail if t >= 0 else 1.0 - tail
 
 
@@ -458,6 +467,7 @@ def welch_test(a: Any, b: Any) -> WelchResult:
             return WelchResult(0.0, float(na + nb - 2), 1.0, 0.0)
         return WelchResult(math.copysign(math.inf, diff), float(na + nb - 2), 0.0, diff)
     t = diff / math.sqrt(se2)
-    df = se2 * se2 / (va * va / (na - 1) + vb * vb / (nb - 1))
+    ra, rb = va / se2, vb / se2  # scale-free form: no underflow of se2 ** 2
+    df = 1.0 / (ra * ra / (na - 1) + rb * rb / (nb - 1))
     p = min(1.0, 2.0 * student_t_sf(abs(t), df))
     return WelchResult(float(t), float(df), float(p), diff)

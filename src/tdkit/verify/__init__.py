@@ -19,6 +19,8 @@ from __future__ import annotations
 from ._report import CheckResult, VerificationReport
 from ._runner import CHECK_NAMES, assert_agent, run_check, verify_agent
 from .differential import Divergence, RecordedTransition, compare_updates, record_transitions
+from .factories import AgentFactory, agent_factory
+from .performance import AgentScores, PerformanceComparison, compare_performance
 
 __all__ = [
     # conformance checks
@@ -33,4 +35,11 @@ __all__ = [
     "record_transitions",
     "Divergence",
     "RecordedTransition",
+    # statistical comparison
+    "compare_performance",
+    "PerformanceComparison",
+    "AgentScores",
+    # factories
+    "agent_factory",
+    "AgentFactory",
 ]

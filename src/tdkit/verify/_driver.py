@@ -15,6 +15,7 @@ from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
+import gymnasium
 import numpy as np
 
 from ..loop import episode_seed
@@ -106,6 +107,8 @@ def build_agent(make_agent: Callable[[Any, int], Any], env: Any, seed: int) -> A
 
 def check_errors(errors: Any, where: str) -> tuple[float, ...]:
     """Return ``update()``'s result as a tuple of floats, or raise an AgentFault."""
+    if type(errors) is tuple and all(type(e) is float for e in errors):
+        return errors  # the common case, checked cheaply
     if isinstance(errors, np.ndarray):
         if errors.ndim != 1:
             raise AgentFault(
@@ -172,6 +175,19 @@ class Watcher:
         """Called when an episode ended."""
 
 
+def _action_check(space: Any) -> Callable[[Any], bool]:
+    """A fast membership test for ``Discrete`` spaces, ``space.contains`` otherwise."""
+    if isinstance(space, gymnasium.spaces.Discrete):
+        low, high = int(space.start), int(space.start + space.n)
+
+        def valid(action: Any) -> bool:
+            return (isinstance(action, (int, np.integer)) and not isinstance(action, bool)
+                    and low <= action < high)
+
+        return valid
+    return space.contains
+
+
 @dataclass
 class RunTrace:
     """What happened in :func:`run_episodes`."""
@@ -206,6 +222,7 @@ def run_episodes(
     watch = watcher or Watcher()
     root = np.random.SeedSequence(seed)
     space = env.action_space
+    valid = _action_check(space)
     trace = RunTrace()
     for episode in range(episodes):
         obs, info = env.reset(seed=episode_seed(root, episode))
@@ -217,7 +234,7 @@ def run_episodes(
                 action = agent.act(obs, mask=mask)
             except Exception as exc:
                 raise AgentFault(f"act({obs!r}) raised {_describe_exc(exc)}", here) from exc
-            if not space.contains(action):
+            if not valid(action):
                 raise AgentFault(
                     f"act({obs!r}) returned {action!r}, which is not in the action space {space}",
                     here,

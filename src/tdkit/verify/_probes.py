@@ -214,7 +214,7 @@ def masks_probe() -> Probe:
     masks = np.array([[True, True], [True, False], [True, True]])
     return Probe(
         "masks-probe", mdp, model, value_states=(0, 1), choice_states=(0,), masks=masks,
-        bug="a target that lets masked actions into its max/expectation", bug_model=bug,
+        bug="letting masked actions into the target's max or expectation", bug_model=bug,
     )
 
 
@@ -328,7 +328,7 @@ def state_probe(prediction: bool = False) -> Probe:
         moves: Moves = {(s, 0): (8, (1.0 - 2.0 * _BEST[s]) * (1.0 + s / 7)) for s in starts}
         mdp = _mdp(9, 1, moves, gamma=0.9, terminal=(8,), starts=starts)
         return Probe("state-probe", mdp, mdp, value_states=starts,
-                     bug="two observations sharing one table row (encoder collision)")
+                     bug="sending two observations to one table row (an encoder collision)")
     moves = {}
     for s in starts:
         moves[(s, _BEST[s])] = (8, 1.0 + s / 7)
@@ -336,7 +336,7 @@ def state_probe(prediction: bool = False) -> Probe:
     mdp = _mdp(9, 2, moves, gamma=0.9, terminal=(8,), starts=starts)
     return Probe(
         "state-probe", mdp, mdp, value_states=starts, choice_states=starts,
-        bug="two observations sharing one table row (encoder collision)",
+        bug="sending two observations to one table row (an encoder collision)",
     )
 
 

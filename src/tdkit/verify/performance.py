@@ -1,0 +1,219 @@
+r"""Statistical comparison of two agents over seeds.
+
+:func:`compare_performance` trains a fresh agent of each kind on a fresh
+environment for every seed, scores each run by its mean greedy return after
+training, and compares the two samples of run scores:
+
+* point estimates: mean and interquartile mean (IQM) of the run scores, each
+  with a percentile bootstrap confidence interval (Agarwal et al. 2021);
+* a two-sided Welch's t-test of the means;
+* a verdict at the stated confidence ``c``: ``"better"`` or ``"worse"``
+  (A compared with B) when the p-value is below ``1 - c``, else
+  ``"no different"``.
+
+Runs are independent, so they can run in parallel on any
+:class:`concurrent.futures.Executor` (factories must then pickle: use
+module-level functions or :func:`tdkit.verify.agent_factory`).
+
+References
+----------
+.. [1] Agarwal, R., Schwarzer, M., Castro, P. S., Courville, A. & Bellemare,
+   M. G. (2021). Deep Reinforcement Learning at the Edge of the Statistical
+   Precipice. NeurIPS 34.
+.. [2] Welch, B. L. (1947). Biometrika 34, 28-35.
+"""
+
+from __future__ import annotations
+
+import numbers
+from collections.abc import Callable, Iterable
+from concurrent.futures import Executor
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from .._errors import InvalidParameterError
+from .._validation import check_in_range, check_positive_int
+from ..loop import evaluate, train
+from ..stats import ConfidenceInterval, WelchResult, bootstrap_ci, welch_test
+
+__all__ = ["AgentScores", "PerformanceComparison", "compare_performance", "run_score"]
+
+VERDICTS = ("better", "no different", "worse")
+
+B_SEED_OFFSET = 1_000_003
+"""B's runs use ``seed + B_SEED_OFFSET``, so the two samples are independent (Welch's test
+assumes it) and two copies of one factory do not trivially give identical scores."""
+
+
+@dataclass(frozen=True)
+class AgentScores:
+    """Run scores of one agent and their summaries."""
+
+    label: str
+    scores: tuple[float, ...]
+    mean: ConfidenceInterval
+    iqm: ConfidenceInterval
+
+
+@dataclass(frozen=True)
+class PerformanceComparison:
+    """Result of :func:`compare_performance`; ``verdict`` describes A relative to B."""
+
+    a: AgentScores
+    b: AgentScores
+    welch: WelchResult
+    confidence: float
+    verdict: str
+    seeds: tuple[int, ...]
+
+    def __str__(self) -> str:
+        lines = [f"performance over {len(self.seeds)} seeds (score: mean greedy return)"]
+        for agent in (self.a, self.b):
+            lines.append(f"  {agent.label}: mean {agent.mean}   IQM {agent.iqm}")
+        w = self.welch
+        lines.append(
+            f"  Welch t = {w.statistic:.3g}, df = {w.df:.3g}, p = {w.p_value:.3g}; "
+            f"A is {self.verdict}"
+            + ("" if self.verdict == "no different" else " than B")
+            + f" at {self.confidence:.0%} confidence"
+        )
+        return "\n".join(lines)
+
+
+def run_score(
+    make_agent: Callable[[Any, int], Any],
+    make_env: Callable[[], Any],
+    seed: int,
+    episodes: int,
+    eval_episodes: int,
+    max_episode_steps: int | None,
+) -> float:
+    """Score of one run: train a fresh agent, return its mean greedy return.
+
+    The agent is ``make_agent(env, seed)``; training and evaluation use the
+    environment seeds of two children of ``SeedSequence(seed)``. Module
+    level, so executors can pickle it.
+    """
+    env = make_env()
+    agent = make_agent(env, seed)
+    train_root, eval_root = np.random.SeedSequence(seed).spawn(2)
+    train(agent, env, episodes=episodes, seed=train_root, max_episode_steps=max_episode_steps)
+    returns = evaluate(
+        agent, env, episodes=eval_episodes, seed=eval_root, max_episode_steps=max_episode_steps
+    )
+    return float(np.mean(returns))
+
+
+def _scores(
+    make: Callable, make_env: Callable, seeds: tuple[int, ...], settings: tuple,
+    executor: Executor | None,
+) -> list[float]:
+    n = len(seeds)
+    columns = ([make] * n, [make_env] * n, list(seeds), *([value] * n for value in settings))
+    if executor is None:
+        return [run_score(*args) for args in zip(*columns, strict=True)]
+    return list(executor.map(run_score, *columns))
+
+
+def compare_performance(
+    make_a: Callable[[Any, int], Any],
+    make_b: Callable[[Any, int], Any],
+    make_env: Callable[[], Any],
+    seeds: Iterable[int] = range(10),
+    *,
+    episodes: int = 200,
+    eval_episodes: int = 20,
+    max_episode_steps: int | None = 1000,
+    executor: Executor | None = None,
+    confidence: float = 0.95,
+    n_resamples: int = 2000,
+    labels: tuple[str, str] = ("A", "B"),
+) -> PerformanceComparison:
+    """Compare two agent factories over seeds: means, IQMs, bootstrap CIs, Welch's test.
+
+    For every seed, each factory builds an agent on a fresh ``make_env()``,
+    which is trained for ``episodes`` episodes and scored by the mean return
+    of ``eval_episodes`` greedy episodes (:func:`tdkit.evaluate`). A's run
+    uses ``seed``, B's ``seed + B_SEED_OFFSET`` (independent samples).
+
+    Parameters
+    ----------
+    make_a, make_b : callable
+        ``make(env, seed) -> agent``.
+    make_env : callable
+        ``make_env() -> env`` (anything :func:`tdkit.train` accepts).
+    seeds : iterable of int, default range(10)
+        One run per seed and agent; at least 2 seeds.
+    episodes : int, default 200
+        Training episodes per run.
+    eval_episodes : int, default 20
+        Greedy evaluation episodes per run.
+    max_episode_steps : int or None, default 1000
+        Time limit for training (truncation) and evaluation episodes.
+    executor : concurrent.futures.Executor, optional
+        Runs the seeds in parallel (``executor.map``); the factories must
+        pickle for process pools. Results do not depend on the executor.
+    confidence : float, default 0.95
+        Confidence of the intervals and of the verdict.
+    n_resamples : int, default 2000
+        Bootstrap resamples.
+    labels : (str, str)
+        Names of A and B in the printed summary.
+
+    Returns
+    -------
+    PerformanceComparison
+        ``verdict`` is ``"better"``, ``"no different"`` or ``"worse"`` for
+        A compared with B: ``"better"``/``"worse"`` when Welch's two-sided
+        p-value is below ``1 - confidence``, in the direction of the mean
+        difference.
+
+    Raises
+    ------
+    InvalidParameterError
+        On a non-callable factory, fewer than 2 seeds, or settings out of range.
+    """
+    owner = "compare_performance"
+    for name, value in (("make_a", make_a), ("make_b", make_b), ("make_env", make_env)):
+        if not callable(value):
+            raise InvalidParameterError(f"{owner}: {name} must be callable; got {value!r:.80}.")
+    seed_list = tuple(seeds)
+    if len(seed_list) < 2 or any(
+        isinstance(s, bool) or not isinstance(s, numbers.Integral) or s < 0 for s in seed_list
+    ):
+        raise InvalidParameterError(
+            f"{owner}: seeds must hold at least 2 non-negative ints; got {seed_list!r:.80}."
+        )
+    seed_list = tuple(int(s) for s in seed_list)
+    episodes = check_positive_int(owner, "episodes", episodes)
+    eval_episodes = check_positive_int(owner, "eval_episodes", eval_episodes)
+    if max_episode_steps is not None:
+        max_episode_steps = check_positive_int(owner, "max_episode_steps", max_episode_steps)
+    confidence = check_in_range(owner, "confidence", confidence, 0.0, 1.0,
+                                low_open=True, high_open=True)
+    n_resamples = check_positive_int(owner, "n_resamples", n_resamples)
+    if executor is not None and not callable(getattr(executor, "map", None)):
+        raise InvalidParameterError(
+            f"{owner}: executor must be a concurrent.futures.Executor (or have map); "
+            f"got {executor!r:.80}."
+        )
+    settings = (episodes, eval_episodes, max_episode_steps)
+    summaries = []
+    for label, make, offset in zip(labels, (make_a, make_b), (0, B_SEED_OFFSET), strict=True):
+        run_seeds = tuple(s + offset for s in seed_list)
+        scores = _scores(make, make_env, run_seeds, settings, executor)
+        summaries.append(AgentScores(
+            label,
+            tuple(scores),
+            bootstrap_ci(scores, "mean", confidence=confidence, n_resamples=n_resamples, seed=0),
+            bootstrap_ci(scores, "iqm", confidence=confidence, n_resamples=n_resamples, seed=0),
+        ))
+    a, b = summaries
+    test = welch_test(a.scores, b.scores)
+    if test.p_value < 1.0 - confidence:
+        verdict = "better" if test.mean_difference > 0 else "worse"
+    else:
+        verdict = "no different"
+    return PerformanceComparison(a, b, test, confidence, verdict, seed_list)
