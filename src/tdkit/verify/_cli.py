@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import importlib
 import os
 import sys
@@ -76,7 +77,6 @@ def main_verify(
     except InvalidParameterError as exc:
         print(f"error: {exc}", file=err)
         return 2
-    report = type(report)(report.checks, report.level, report.seed, agent=report.agent,
-                          kind=report.kind, factory=spec)
+    report = dataclasses.replace(report, factory=spec)
     print(report, file=out)
     return 0 if report.passed else 1

@@ -15,9 +15,9 @@ which a classic bug changes the fixed point by a wide margin, and in which the
 correct fixed point :math:`Q^*` does not depend on the agent's exploration.
 After training, an agent passes when
 
-* (agents with ``q_values``) the values of the optimal actions of the probe's
-  value states are within ``VALUE_TOLERANCE`` (5%) of the value scale of
-  :math:`Q^*`, and
+* (agents with ``q_values``) in each of the probe's value states, the largest
+  value among the optimal actions is within ``VALUE_TOLERANCE`` (5%) of the
+  value scale ``max(1, max |Q*|)`` of :math:`V^*`, and
 * (control agents) the greedy action (``act(obs, explore=False)``, called
   several times to expose random ties) is optimal in every choice state, and
 * (prediction agents, ``values``) the state values are within the same
@@ -27,12 +27,14 @@ Why 5%: in every probe the bug moves a checked value (or flips a greedy
 choice) by at least half of the value scale (see each probe's docstring), so
 5% separates the two by a factor of 10. A correct learner's error on a
 deterministic probe shrinks geometrically, like :math:`(1 - \alpha)^k` after
-:math:`k` updates of a pair and its successors; every checked pair receives
-at least ``PROBE_EPISODES / 8 = 50`` updates, so any step size
-:math:`\alpha \ge 0.1` reaches :math:`0.9^{50} \approx 0.5\%` (chains of
-bootstrapping multiply this by a polynomial factor of the chain length 5).
-Agents whose factories use much smaller step sizes need more episodes than
-the verifier gives them; this is stated in the failure message.
+:math:`k` updates of a pair and its successors. The least visited checked
+pairs are those of the state probe's 8 start states, about
+``PROBE_EPISODES / 8 = 100`` updates each (about 50 per table for Double
+Q-learning, which splits its updates), so any step size :math:`\alpha \ge 0.1`
+reaches :math:`0.9^{50} \approx 0.5\%` (chains of bootstrapping multiply this
+by a polynomial factor of the chain length, at most 5). Agents whose factories
+use much smaller step sizes need more episodes than the verifier gives them;
+failure messages state the number of training episodes.
 """
 
 from __future__ import annotations
@@ -738,9 +740,14 @@ def _judge_convergence(
         for i, s in enumerate(live):
             if not abs(estimate[i] - v_star[s]) <= tol:
                 label = "V" if kind.prediction else "max_a Q"
+                hint = ""
+                if not kind.prediction and estimate[i] < v_star[s]:
+                    hint = ("; an on-policy agent that keeps exploring learns the values of "
+                            "its exploring policy: decay its exploration")
                 return (
                     f"{label}({s}) = {fmt(float(estimate[i]))} (averaged over the last quarter "
                     f"of training) but the exact value is {fmt(float(v_star[s]))} ± {tol:g}"
+                    + hint
                 )
     if kind.prediction:
         return None
