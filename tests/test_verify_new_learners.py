@@ -34,11 +34,11 @@ FACTORIES = {
     "SarsaLambda": agent_factory(SarsaLambda, lam=0.8, trace="dutch", step_size=0.1,
                                  exploration=DECAYING),
     "WatkinsQLambda": agent_factory(WatkinsQLambda, lam=0.8, step_size=0.1, exploration=0.2),
-    "DynaQ": agent_factory(DynaQ, planning_steps=5, model="counts", step_size=0.1,
+    "DynaQ": agent_factory(DynaQ, planning_steps=2, model="counts", step_size=0.1,
                            exploration=0.2),
-    "DynaQPlus": agent_factory(DynaQPlus, planning_steps=5, kappa=1e-4, model="counts",
+    "DynaQPlus": agent_factory(DynaQPlus, planning_steps=2, kappa=1e-4, model="counts",
                                step_size=0.1, exploration=0.2),
-    "PrioritizedSweeping": agent_factory(PrioritizedSweeping, planning_steps=5, model="counts",
+    "PrioritizedSweeping": agent_factory(PrioritizedSweeping, planning_steps=2, model="counts",
                                          step_size=0.1, exploration=0.2),
 }
 
