@@ -344,21 +344,3 @@ def test_values_views_params_and_protocol(cls):
     assert "exploration" not in params and params["policy"] is agent.policy
     assert repr(agent).startswith(f"{cls.__name__}(n_states=3")
     assert agent.update() == ()
-
-
-@pytest.mark.parametrize("cls", PREDICTORS)
-def test_passes_the_verifier_at_both_levels(cls):
-    # tdkit.verify runs the checks that apply to prediction learners (protocol,
-    # reproducibility, terminal, truncation, discounting, state encoding,
-    # numerical hygiene, convergence to the exact values).
-    from tdkit.verify import verify_agent
-
-    def make(env, seed):
-        n_states, n_actions = env.observation_space.n, env.action_space.n
-        extra = {"lam": 0.5} if cls is TDLambda else {}
-        return cls.for_env(env, policy=uniform_policy(n_states, n_actions), step_size=0.1,
-                           seed=seed, **extra)
-
-    for level in ("quick", "full"):
-        report = verify_agent(make, level=level)
-        assert report.passed, str(report)
