@@ -6,7 +6,7 @@ dynamic-programming optimum, and verify your own agents against them.
 
 from __future__ import annotations
 
-from . import envs, exploration, schedules
+from . import dp, encoders, envs, exploration, schedules, stats, testing, verify
 from ._errors import (
     CapacityError,
     EnvironmentProtocolError,
@@ -15,8 +15,35 @@ from ._errors import (
     TdkitError,
 )
 from .agent import Agent, TabularAgent
+from .dp import (
+    GreedyPolicy,
+    Solution,
+    action_values,
+    bellman_expectation_operator,
+    bellman_optimality_operator,
+    bellman_residual,
+    evaluate_policy,
+    greedy_policy,
+    policy_iteration,
+    value_iteration,
+)
+from .envs.finite import FiniteMDP
 from .history import History
-from .learners import DoubleQLearning, ExpectedSarsa, QLearning, Sarsa
+from .learners import (
+    TD0,
+    DoubleQLearning,
+    DynaQ,
+    DynaQPlus,
+    ExpectedSarsa,
+    NStepSarsa,
+    PrioritizedSweeping,
+    QLearning,
+    Sarsa,
+    SarsaLambda,
+    TDLambda,
+    TreeBackup,
+    WatkinsQLambda,
+)
 from .loop import evaluate, train
 from .store import load, save
 
@@ -26,22 +53,50 @@ __all__ = [
     # protocol and base class
     "Agent",
     "TabularAgent",
-    # learners
+    # one-step control
     "DoubleQLearning",
     "ExpectedSarsa",
     "QLearning",
     "Sarsa",
-    # training
+    # multi-step control and traces
+    "NStepSarsa",
+    "TreeBackup",
+    "SarsaLambda",
+    "WatkinsQLambda",
+    # planning
+    "DynaQ",
+    "DynaQPlus",
+    "PrioritizedSweeping",
+    # prediction
+    "TD0",
+    "TDLambda",
+    # training and persistence
     "History",
     "evaluate",
     "train",
-    # persistence
     "load",
     "save",
-    # building blocks
+    # finite models and exact solvers
+    "FiniteMDP",
+    "GreedyPolicy",
+    "Solution",
+    "action_values",
+    "bellman_expectation_operator",
+    "bellman_optimality_operator",
+    "bellman_residual",
+    "evaluate_policy",
+    "greedy_policy",
+    "policy_iteration",
+    "value_iteration",
+    # modules
+    "dp",
+    "encoders",
     "envs",
     "exploration",
     "schedules",
+    "stats",
+    "testing",
+    "verify",
     # errors
     "CapacityError",
     "EnvironmentProtocolError",
