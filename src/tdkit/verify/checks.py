@@ -667,6 +667,7 @@ class _Problem:
     episodes: int
     max_steps: int | None
     source: str
+    stochastic: bool = True
 
 
 def _convergence_problems(ctx: Context) -> list[_Problem]:
@@ -679,12 +680,12 @@ def _convergence_problems(ctx: Context) -> list[_Problem]:
         if ctx.level == "full":
             found.append(_Problem(
                 "discounted-chain", discount_probe(True).mdp, 400, None,
-                "deterministic chain, values 0.8^k",
+                "deterministic chain, values 0.8^k", stochastic=False,
             ))
         return found
     grid = _Problem(
         "gridworld-4x4", problems.gridworld_4x4(), CONVERGENCE_EPISODES, 100,
-        "Sutton & Barto (2018), Example 4.1 (undiscounted, -1 per step)",
+        "Sutton & Barto (2018), Example 4.1 (undiscounted, -1 per step)", stochastic=False,
     )
     found = [grid]
     if ctx.level == "full":
@@ -693,24 +694,28 @@ def _convergence_problems(ctx: Context) -> list[_Problem]:
 
 
 class _Averager(Watcher):
-    """Averages the agent's values after every update of the last quarter of the episodes.
+    """Averages the agent's values over the last quarter of the episodes.
 
     Iterate averaging (Polyak & Juditsky 1992): with a constant step size the
     values keep fluctuating around their fixed point; their time average does
-    not.
+    not. On a stochastic problem the values are read after every update (a
+    reading only at episode ends would over-weight the updates that end
+    episodes); on a deterministic one, where the values settle, after every
+    episode.
     """
 
-    def __init__(self, agent: Any, kind: AgentKind, states: list[int], episodes: int) -> None:
+    def __init__(
+        self, agent: Any, kind: AgentKind, states: list[int], episodes: int, every_step: bool
+    ) -> None:
         self.agent = agent
         self.kind = kind
         self.states = states
         self.start = episodes - episodes // 4
+        self.every_step = every_step
         self.total: np.ndarray | None = None
         self.count = 0
 
-    def after_update(self, episode: int, step: int, transition: tuple, errors: tuple) -> None:
-        if episode < self.start:
-            return
+    def _add(self) -> None:
         if self.kind.q_values:
             table = read_q(self.agent, self.states)
         elif self.kind.values:
@@ -719,6 +724,14 @@ class _Averager(Watcher):
             return
         self.total = table if self.total is None else self.total + table
         self.count += 1
+
+    def after_update(self, episode: int, step: int, transition: tuple, errors: tuple) -> None:
+        if self.every_step and episode >= self.start:
+            self._add()
+
+    def after_episode(self, episode: int, steps: int) -> None:
+        if not self.every_step and episode >= self.start:
+            self._add()
 
     @property
     def mean(self) -> np.ndarray | None:
@@ -799,7 +812,8 @@ def check_convergence(ctx: Context) -> CheckResult:
             try:
                 agent = build_agent(ctx.make_agent, env, seed)
                 live = [int(s) for s in np.flatnonzero(~problem.mdp.terminal)]
-                averager = _Averager(agent, ctx.kind, live, problem.episodes)
+                averager = _Averager(agent, ctx.kind, live, problem.episodes,
+                                     problem.stochastic)
                 run_episodes(agent, env, episodes=problem.episodes, seed=seed, watcher=averager)
                 text = _judge_convergence(agent, problem, ctx.kind, averager.mean)
             except AgentFault as fault:
