@@ -17,12 +17,15 @@ state, and its constructor arguments (schedules, exploration rules and
 encoders through their ``describe()``). Learners with other internal
 containers (planning models, priority queues) provide
 ``_get_extra_state() -> dict`` and ``_set_extra_state(dict)`` with
-JSON-serialisable content. Transitions observed but not yet applied cannot be
-saved: call ``update()`` first.
+JSON-serialisable content. Per-episode containers (multi-step buffers,
+eligibility traces) are empty between episodes and saved as such; saving in
+the middle of an episode, or with transitions observed but not yet applied,
+raises :class:`tdkit.StoreError`.
 """
 
 from __future__ import annotations
 
+import collections
 import hashlib
 import io
 import json
@@ -40,6 +43,9 @@ __all__ = ["load", "load_checkpoint", "load_state_into", "save", "save_checkpoin
 FORMAT_AGENT = "tdkit-agent"
 FORMAT_CHECKPOINT = "tdkit-checkpoint"
 FORMAT_VERSION = 1
+
+# Containers of per-episode state; they are empty between episodes.
+_CONTAINERS = (collections.deque, dict, list, set)
 
 # Instance attributes that are rebuilt from the constructor, not saved.
 _REBUILT = {"_encode", "_action_index", "_env_action", "_step_size", "_explore", "_rng",
@@ -146,6 +152,17 @@ def _agent_state(agent: Any) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
         if isinstance(value, np.ndarray):
             arrays[f"state/{name}"] = value
             continue
+        if isinstance(value, _CONTAINERS):
+            if value:
+                raise StoreError(
+                    f"cannot save {type(agent).__name__} in the middle of an episode: "
+                    f"{name!r} holds {len(value)} item(s) of per-episode state (a multi-step "
+                    "buffer or eligibility traces). Save after an episode has ended."
+                )
+            scalars[name] = {"__empty__": type(value).__name__}
+            continue
+        if callable(value):
+            continue  # functions and bound methods are rebuilt by the constructor
         try:
             scalars[name] = _scalar_json(value)
         except TypeError:
@@ -185,7 +202,10 @@ def _apply_state(agent: Any, meta: dict[str, Any], arrays: Any) -> None:
     for name, saved in updates.items():
         np.copyto(getattr(agent, name), saved)
     for name, value in meta["scalars"].items():
-        setattr(agent, name, _scalar_from_json(value))
+        if isinstance(value, dict) and "__empty__" in value:
+            getattr(agent, name).clear()
+        else:
+            setattr(agent, name, _scalar_from_json(value))
     agent.rng.bit_generator.state = meta["rng"]
     if meta.get("extra") is not None:
         agent._set_extra_state(meta["extra"])

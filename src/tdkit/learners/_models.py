@@ -67,6 +67,31 @@ class _PairIndex:
     def __len__(self) -> int:
         return len(self.states)
 
+    def _index_state(self) -> dict:
+        return {
+            "states": list(self.states),
+            "actions": [[s, list(acts)] for s, acts in self.actions.items()],
+            "predecessors": [
+                [s2, [list(pair) for pair in pairs]] for s2, pairs in self.predecessors.items()
+            ],
+        }
+
+    def _set_index_state(self, state: dict) -> None:
+        self.states = [int(s) for s in state["states"]]
+        self.actions = {int(s): [int(a) for a in acts] for s, acts in state["actions"]}
+        self.predecessors = {
+            int(s2): {(int(s), int(a)): None for s, a in pairs}
+            for s2, pairs in state["predecessors"]
+        }
+
+
+def _mask_to_json(mask: np.ndarray | None) -> list[bool] | None:
+    return None if mask is None else [bool(x) for x in mask]
+
+
+def _mask_from_json(mask: list[bool] | None) -> np.ndarray | None:
+    return None if mask is None else np.array(mask, dtype=bool)
+
 
 class LastOutcomeModel(_PairIndex):
     """Each observed pair predicts the outcome it had last (deterministic model).
@@ -109,6 +134,24 @@ class LastOutcomeModel(_PairIndex):
 
     def __contains__(self, pair: object) -> bool:
         return pair in self._table
+
+    def get_state(self) -> dict:
+        """JSON-serialisable contents, in insertion order (for :mod:`tdkit.store`)."""
+        return {
+            **self._index_state(),
+            "table": [
+                [s, a, r, s2, bool(terminated), _mask_to_json(mask)]
+                for (s, a), (r, s2, terminated, mask) in self._table.items()
+            ],
+        }
+
+    def set_state(self, state: dict) -> None:
+        """Inverse of :meth:`get_state`."""
+        self._set_index_state(state)
+        self._table = {
+            (int(s), int(a)): (float(r), int(s2), bool(t), _mask_from_json(m))
+            for s, a, r, s2, t, m in state["table"]
+        }
 
 
 class CountsModel(_PairIndex):
@@ -171,6 +214,30 @@ class CountsModel(_PairIndex):
 
     def __contains__(self, pair: object) -> bool:
         return pair in self._table
+
+    def get_state(self) -> dict:
+        """JSON-serialisable contents, in insertion order (for :mod:`tdkit.store`)."""
+        return {
+            **self._index_state(),
+            "table": [
+                [s, a, [[s2, bool(t), count, mean_r, _mask_to_json(mask)]
+                        for (s2, t), (count, mean_r, mask) in outcomes.items()]]
+                for (s, a), outcomes in self._table.items()
+            ],
+        }
+
+    def set_state(self, state: dict) -> None:
+        """Inverse of :meth:`get_state`."""
+        self._set_index_state(state)
+        self._table = {}
+        self._totals = {}
+        for s, a, outcomes in state["table"]:
+            key = (int(s), int(a))
+            self._table[key] = {
+                (int(s2), bool(t)): [int(count), float(mean_r), _mask_from_json(m)]
+                for s2, t, count, mean_r, m in outcomes
+            }
+            self._totals[key] = sum(int(o[2]) for o in outcomes)
 
 
 def make_model(owner: str, kind: object) -> LastOutcomeModel | CountsModel:

@@ -75,6 +75,15 @@ class _PlanningLearner(QLearning):
     def _plan(self) -> None:
         raise NotImplementedError
 
+    # Saved by tdkit.store through these hooks (the model is not an array).
+    _extra_state_attributes: ClassVar[tuple[str, ...]] = ("_model",)
+
+    def _get_extra_state(self) -> dict[str, Any]:
+        return {"model": self._model.get_state()}
+
+    def _set_extra_state(self, state: dict[str, Any]) -> None:
+        self._model.set_state(state["model"])
+
     @property
     def updates_(self) -> int:
         """All updates applied so far: real transitions learned plus planning updates."""
@@ -343,6 +352,25 @@ class PrioritizedSweeping(_PlanningLearner):
             self._td_step(q, visits, s, a, self._model_target(s, a))
             self.planning_updates_ += 1
             self._queue_predecessors(s)
+
+    _extra_state_attributes: ClassVar[tuple[str, ...]] = ("_model", "_heap", "_queued", "_order")
+
+    def _get_extra_state(self) -> dict[str, Any]:
+        order = next(self._order)  # reading the counter consumes one number ...
+        self._order = itertools.count(order)  # ... so start a fresh counter there
+        return {
+            **super()._get_extra_state(),
+            "heap": [list(entry) for entry in self._heap],
+            "queued": [[s, a, p] for (s, a), p in self._queued.items()],
+            "order": order,
+        }
+
+    def _set_extra_state(self, state: dict[str, Any]) -> None:
+        super()._set_extra_state(state)
+        self._heap = [(float(p), int(k), int(s), int(a)) for p, k, s, a in state["heap"]]
+        heapq.heapify(self._heap)
+        self._queued = {(int(s), int(a)): float(p) for s, a, p in state["queued"]}
+        self._order = itertools.count(int(state["order"]))
 
     @property
     def queue_size(self) -> int:
