@@ -379,14 +379,19 @@ class TabularAgent:
         ``visits[s, a]`` is incremented first, so per-pair schedules see the
         count including this update.
         """
+        alpha = self._count_visit(visits, s, a)
+        delta = target - values[s, a]
+        values[s, a] += alpha * delta
+        return float(delta)
+
+    def _count_visit(self, visits: np.ndarray, s: int, a: int) -> float:
+        """Increment ``visits[s, a]`` and return the step size for this update."""
         n = visits[s, a] + 1
         visits[s, a] = n
         alpha = self._alpha_const
         if alpha is None:
             alpha = self._step_size.value(self.steps_, int(n))
-        delta = target - values[s, a]
-        values[s, a] += alpha * delta
-        return float(delta)
+        return alpha
 
     # ------------------------------------------------------------ inspection
     @property

@@ -92,12 +92,7 @@ class _TraceLearner(TabularAgent):
         self._before_step(s, a)
         q_next = self._next_value(s2, next_mask, terminated, truncated)
         col = self._column(a)
-        visits = self._visits
-        n = visits[s, col] + 1
-        visits[s, col] = n
-        alpha = self._alpha_const
-        if alpha is None:
-            alpha = self._step_size.value(self.steps_, int(n))
+        alpha = self._count_visit(self._visits, s, col)
         k = s * self._width + col
         q_sa = float(self._flat[k])
         target = r if terminated else r + self.gamma * q_next
