@@ -12,6 +12,7 @@ import tdkit
 from tdkit.dp import evaluate_policy
 from tdkit.envs.problems import random_walk
 from tdkit.learners import ExpectedSarsa, NStepSarsa, QLearning, Sarsa, TreeBackup
+from tdkit.testing.streams import feed, random_transitions
 
 N_STEP = [NStepSarsa, TreeBackup]
 
@@ -56,31 +57,6 @@ def run_lockstep(agents, seed, steps, n_states, n_actions, use_masks, act_first_
     return actions
 
 
-def random_transitions(seed, steps, n_states, n_actions, use_masks):
-    """A stream of transitions with arbitrary (not agent-chosen) actions."""
-    rng = np.random.default_rng(seed)
-    out = []
-    s = 0
-    for _ in range(steps):
-        a = int(rng.integers(n_actions))
-        s2 = int(rng.integers(n_states))
-        terminated = bool(rng.random() < 0.1)
-        truncated = not terminated and bool(rng.random() < 0.05)
-        next_mask = None
-        if use_masks:
-            next_mask = rng.random(n_actions) < 0.6
-            next_mask[int(rng.integers(n_actions))] = True
-        out.append((s, a, float(rng.normal()), s2, terminated, truncated, next_mask))
-        s = int(rng.integers(n_states)) if terminated or truncated else s2
-    return out
-
-
-def feed(agent, transitions):
-    for s, a, r, s2, te, tr, m in transitions:
-        agent.observe(s, a, r, s2, te, tr, next_mask=m)
-        agent.update()
-
-
 # ----------------------------------------------------------------- equivalences
 @settings(max_examples=40)
 @given(
@@ -119,7 +95,7 @@ def test_tree_backup_with_n_1_is_q_learning_and_greedy_expected_sarsa(
 ):
     # Sutton & Barto (2018), Section 7.5: one-step tree backup is Expected
     # SARSA with the target policy; a greedy target policy makes it Q-learning.
-    transitions = random_transitions(seed, 150, n_states, n_actions, use_masks)
+    transitions = random_transitions(seed, 150, n_states, n_actions, masks=use_masks)
     kwargs = dict(gamma=0.9, step_size=0.4, seed=0)
     tree = TreeBackup(n_states, n_actions, n=1, exploration=0.3, **kwargs)
     q = QLearning(n_states, n_actions, exploration=0.3, **kwargs)
@@ -136,7 +112,7 @@ def test_n_step_methods_agree_when_there_is_one_action(seed, n):
     # With a single action every policy is the same, so n-step SARSA, its
     # off-policy form (all ratios 1) and Tree Backup (pi(A_k) = 1) give the
     # same n-step return (Sutton & Barto 2018, Eqs. 7.4, 7.11 and 7.16).
-    transitions = random_transitions(seed, 120, 4, 1, False)
+    transitions = random_transitions(seed, 120, 4, 1, masks=False)
     agents = [
         NStepSarsa(4, 1, n=n, gamma=0.8, step_size=0.3, seed=0),
         NStepSarsa(4, 1, n=n, off_policy=True, gamma=0.8, step_size=0.3, seed=0),

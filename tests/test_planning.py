@@ -14,36 +14,12 @@ from tdkit.envs.finite import FiniteMDP
 from tdkit.envs.problems import dyna_maze, garnet, shortcut_maze
 from tdkit.learners import DynaQ, DynaQPlus, PrioritizedSweeping, QLearning
 from tdkit.learners._models import CountsModel, LastOutcomeModel
+from tdkit.testing.streams import feed, random_transitions
 
 PLANNERS = [DynaQ, DynaQPlus, PrioritizedSweeping]
 
 
 # ----------------------------------------------------------------- helpers
-def transitions_stream(seed, steps, n_states, n_actions, use_masks):
-    rng = np.random.default_rng(seed)
-    out, s = [], 0
-    for _ in range(steps):
-        a = int(rng.integers(n_actions))
-        s2 = int(rng.integers(n_states))
-        terminated = bool(rng.random() < 0.1)
-        truncated = not terminated and bool(rng.random() < 0.05)
-        mask = None
-        if use_masks:
-            mask = rng.random(n_actions) < 0.6
-            mask[int(rng.integers(n_actions))] = True
-        out.append((s, a, float(rng.normal()), s2, terminated, truncated, mask))
-        s = int(rng.integers(n_states)) if terminated or truncated else s2
-    return out
-
-
-def feed(agent, transitions):
-    errors = []
-    for s, a, r, s2, te, tr, m in transitions:
-        agent.observe(s, a, r, s2, te, tr, next_mask=m)
-        errors.append(agent.update())
-    return errors
-
-
 class MazeWalker:
     """Greedy path length from the start of a deterministic maze (ties broken by ``rng``)."""
 
@@ -74,7 +50,7 @@ class MazeWalker:
 def test_planning_steps_0_is_q_learning(seed, n_states, n_actions, use_masks, model):
     # Sutton & Barto (2018), Section 8.2: Tabular Dyna-Q is Q-learning (step d)
     # plus n planning updates (step f); with n = 0 only Q-learning remains.
-    transitions = transitions_stream(seed, 150, n_states, n_actions, use_masks)
+    transitions = random_transitions(seed, 150, n_states, n_actions, masks=use_masks)
     q = QLearning(n_states, n_actions, gamma=0.9, step_size=0.3, seed=0)
     feed(q, transitions)
     for cls in PLANNERS:
@@ -359,7 +335,7 @@ def test_prioritized_sweeping_needs_fewer_updates_than_dyna_q():
 # ----------------------------------------------------------------- behaviour basics
 @pytest.mark.parametrize("cls", PLANNERS)
 def test_same_seed_same_planning(cls):
-    transitions = transitions_stream(3, 200, 5, 3, True)
+    transitions = random_transitions(3, 200, 5, 3, masks=True)
 
     def run(seed):
         agent = cls(5, 3, planning_steps=7, gamma=0.9, step_size=0.3, seed=seed)

@@ -14,6 +14,7 @@ from tdkit.envs.finite import FiniteMDP
 from tdkit.envs.problems import garnet
 from tdkit.learners import QLearning, Sarsa, SarsaLambda, WatkinsQLambda
 from tdkit.schedules import VisitCount
+from tdkit.testing.streams import feed, random_transitions
 
 TRACE_LEARNERS = [SarsaLambda, WatkinsQLambda]
 KINDS = ["accumulating", "replacing", "dutch"]
@@ -64,30 +65,6 @@ def run_lockstep(agents, stream, act_first_allowed=True):
     return records
 
 
-def transitions_stream(seed, steps, n_states, n_actions, use_masks):
-    """Transitions with arbitrary actions (for learners whose targets need no choice)."""
-    rng = np.random.default_rng(seed)
-    out, s = [], 0
-    for _ in range(steps):
-        a = int(rng.integers(n_actions))
-        s2 = int(rng.integers(n_states))
-        terminated = bool(rng.random() < 0.1)
-        truncated = not terminated and bool(rng.random() < 0.05)
-        mask = None
-        if use_masks:
-            mask = rng.random(n_actions) < 0.6
-            mask[int(rng.integers(n_actions))] = True
-        out.append((s, a, float(rng.normal()), s2, terminated, truncated, mask))
-        s = int(rng.integers(n_states)) if terminated or truncated else s2
-    return out
-
-
-def feed(agent, transitions):
-    for s, a, r, s2, te, tr, m in transitions:
-        agent.observe(s, a, r, s2, te, tr, next_mask=m)
-        agent.update()
-
-
 def masked_max(row, mask):
     return row.max() if mask is None else row[mask].max()
 
@@ -130,7 +107,7 @@ def test_sarsa_lambda_with_lambda_0_is_sarsa(
 def test_watkins_q_lambda_with_lambda_0_is_q_learning(seed, n_states, n_actions, use_masks, trace):
     # Sutton & Barto (2018), Section 12.10: with lambda = 0 Watkins's Q(lambda)
     # is one-step Q-learning (Eq. 6.8).
-    transitions = transitions_stream(seed, 150, n_states, n_actions, use_masks)
+    transitions = random_transitions(seed, 150, n_states, n_actions, masks=use_masks)
     q = QLearning(n_states, n_actions, gamma=0.9, step_size=0.3, seed=0)
     lam = WatkinsQLambda(n_states, n_actions, lam=0.0, trace=trace, gamma=0.9, step_size=0.3,
                          seed=0)
@@ -248,7 +225,7 @@ def dense_watkins(transitions, shape, gamma, lam, alpha, trace):
 def test_watkins_q_lambda_matches_the_dense_algorithm(
     seed, n_states, n_actions, use_masks, trace, lam
 ):
-    transitions = transitions_stream(seed, 120, n_states, n_actions, use_masks)
+    transitions = random_transitions(seed, 120, n_states, n_actions, masks=use_masks)
     agent = WatkinsQLambda(n_states, n_actions, lam=lam, trace=trace, gamma=0.9, step_size=0.3,
                            trace_cutoff=0.0, seed=0)
     feed(agent, transitions)

@@ -23,7 +23,7 @@ from hypothesis import strategies as st
 
 from .._errors import InvalidParameterError
 
-__all__ = ["transition_streams"]
+__all__ = ["feed", "random_transitions", "transition_streams"]
 
 
 def _positive(name: str, value: Any) -> int:
@@ -120,3 +120,46 @@ def transition_streams(
         )
     return _streams(n_states, n_actions, min_size, max_size, (low, high),
                     float(end_probability), bool(masks))
+
+
+def random_transitions(
+    seed: int, steps: int, n_states: int, n_actions: int, *, masks: bool = False
+) -> list[tuple]:
+    """A reproducible stream of transitions with arbitrary (not agent-chosen) actions.
+
+    Each tuple is in ``observe``'s argument order plus the next mask:
+    ``(obs, action, reward, next_obs, terminated, truncated, next_mask)``.
+    About 10% of steps terminate and 5% are cut by a time limit; the next
+    episode starts in a random state. With ``masks=True`` every next state
+    gets a random mask allowing at least one action.
+
+    Examples
+    --------
+    >>> stream = random_transitions(0, 5, n_states=3, n_actions=2)
+    >>> len(stream), len(stream[0])
+    (5, 7)
+    """
+    rng = np.random.default_rng(seed)
+    out: list[tuple] = []
+    s = 0
+    for _ in range(steps):
+        a = int(rng.integers(n_actions))
+        s2 = int(rng.integers(n_states))
+        terminated = bool(rng.random() < 0.1)
+        truncated = not terminated and bool(rng.random() < 0.05)
+        mask = None
+        if masks:
+            mask = rng.random(n_actions) < 0.6
+            mask[int(rng.integers(n_actions))] = True
+        out.append((s, a, float(rng.normal()), s2, terminated, truncated, mask))
+        s = int(rng.integers(n_states)) if terminated or truncated else s2
+    return out
+
+
+def feed(agent: Any, transitions: list[tuple]) -> list[tuple[float, ...]]:
+    """``observe`` then ``update`` each transition; return the TD errors of each update."""
+    errors = []
+    for s, a, r, s2, terminated, truncated, mask in transitions:
+        agent.observe(s, a, r, s2, terminated, truncated, next_mask=mask)
+        errors.append(agent.update())
+    return errors
