@@ -350,34 +350,6 @@ def test_same_seed_same_planning(cls):
         assert n1 == 7 * 200
 
 
-@pytest.mark.parametrize("cls", PLANNERS)
-def test_greedy_ties_are_uniform(cls):
-    # chi-square, 3 degrees of freedom, 1 - 1e-6 quantile (false failure 1e-6)
-    agent = cls(1, 4, seed=3)
-    n = 20_000
-    counts = np.bincount([agent.act(0, explore=False) for _ in range(n)], minlength=4)
-    chi2 = ((counts - n / 4) ** 2 / (n / 4)).sum()
-    assert chi2 < stats.chi2.ppf(1 - 1e-6, df=3)
-
-
-@pytest.mark.parametrize("cls", PLANNERS)
-@settings(max_examples=15)
-@given(seed=st.integers(0, 2**16), data=st.data())
-def test_masked_actions_are_never_chosen(cls, seed, data):
-    n_actions = data.draw(st.integers(1, 5))
-    mask = np.array(data.draw(st.lists(st.booleans(), min_size=n_actions, max_size=n_actions)))
-    if not mask.any():
-        mask[0] = True
-    agent = cls(2, n_actions, planning_steps=3, exploration=0.5, seed=seed,
-                initial_value=(-1.0, 1.0))
-    for _ in range(20):
-        a = agent.act(0, mask=mask)
-        assert mask[a]
-        agent.observe(0, a, 0.0, 0, False, False, next_mask=mask)
-        agent.update()
-        assert mask[agent.act(0, mask=mask, explore=False)]
-
-
 @pytest.mark.parametrize(
     ("cls", "kwargs", "name"),
     [

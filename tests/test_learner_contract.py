@@ -1,0 +1,101 @@
+"""The promises every control learner keeps, checked on every learner in tdkit.learners.
+
+Design contract (shared/DESIGN.md): greedy ties broken uniformly at random,
+masked actions never chosen, a time limit is not a terminal state, the
+protocol and table shape, validation at construction.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from scipy import stats
+
+import tdkit
+from tdkit import learners
+
+PREDICTION = {"TD0", "TDLambda"}
+CONTROL = [getattr(learners, name) for name in learners.__all__ if name not in PREDICTION]
+
+
+@pytest.mark.parametrize("cls", CONTROL)
+def test_protocol_and_table_shape(cls):
+    agent = cls(4, 3, seed=0)
+    assert isinstance(agent, tdkit.Agent)
+    assert agent.table.shape == (4, 3)
+    assert not agent.table.flags.writeable
+    assert agent.update() == ()
+    assert agent.q_values(2).shape == (3,)
+
+
+@pytest.mark.parametrize("cls", CONTROL)
+def test_greedy_ties_are_uniform(cls):
+    # All four actions tie. Counts of 20,000 greedy picks must fit the uniform
+    # distribution: chi-square with 3 degrees of freedom at the 1 - 1e-6 quantile
+    # (a correct learner fails with probability 1e-6; the seed is fixed anyway).
+    # "First index wins" would give all 20,000 to action 0: chi-square = 60,000.
+    agent = cls(1, 4, seed=7)
+    n = 20_000
+    counts = np.bincount([agent.act(0, explore=False) for _ in range(n)], minlength=4)
+    chi2 = ((counts - n / 4) ** 2 / (n / 4)).sum()
+    assert chi2 < stats.chi2.ppf(1 - 1e-6, df=3)
+
+
+@pytest.mark.parametrize("cls", CONTROL)
+@settings(max_examples=20)
+@given(seed=st.integers(0, 2**16), data=st.data())
+def test_masked_actions_are_never_chosen(cls, seed, data):
+    n_actions = data.draw(st.integers(1, 6))
+    mask = np.array(data.draw(st.lists(st.booleans(), min_size=n_actions, max_size=n_actions)))
+    if not mask.any():
+        mask[0] = True
+    agent = cls(2, n_actions, exploration=0.5, seed=seed, initial_value=(-1.0, 1.0))
+    for _ in range(20):
+        a = agent.act(0, mask=mask)
+        assert mask[a]
+        agent.observe(0, a, float(data.draw(st.floats(-1, 1))), 0, False, False, next_mask=mask)
+        agent.update()
+        assert mask[agent.act(0, mask=mask, explore=False)]
+
+
+@pytest.mark.parametrize("cls", CONTROL)
+def test_time_limit_is_not_a_terminal_state_in_training(cls):
+    """A one-state continuing task cut every step by a time limit.
+
+    Reward 1 forever, gamma 0.9: the true value is 1 / (1 - 0.9) = 10
+    (geometric series). A learner that treats the time limit as terminal
+    learns 1 instead, so the two cases are far apart.
+    """
+
+    class Forever:
+        def reset(self, seed=None):
+            return 0, {}
+
+        def step(self, action):
+            return 0, 1.0, False, False, {}
+
+    agent = cls(1, 1, gamma=0.9, step_size=0.5, exploration=0.0, seed=0)
+    tdkit.train(agent, Forever(), episodes=400, max_episode_steps=1, seed=0)
+    # Each update contracts the error by (1 - alpha (1 - gamma)) = 0.95 (0.975 per update of
+    # one Double-Q table, ~200 each; planning learners only add more such updates):
+    # error after 400 real updates <= 10 * 0.95**200 < 1e-3.
+    assert agent.table[0, 0] == pytest.approx(10.0, abs=1e-2)
+
+
+@pytest.mark.parametrize("cls", CONTROL)
+@pytest.mark.parametrize(
+    ("kwargs", "name"),
+    [
+        ({"gamma": 1.5}, "gamma"),
+        ({"step_size": 0.0}, "step_size"),
+        ({"step_size": 1.5}, "step_size"),
+        ({"exploration": 1.1}, "exploration"),
+        ({"initial_value": float("nan")}, "initial_value"),
+        ({"seed": -3}, "seed"),
+    ],
+)
+def test_shared_hyper_parameters_are_validated(cls, kwargs, name):
+    with pytest.raises(ValueError, match=name):
+        cls(3, 2, **kwargs)
