@@ -44,8 +44,8 @@ def _info_mask(info: dict[str, Any] | None) -> np.ndarray | None:
     if mask is None or (type(mask) is np.ndarray and mask.dtype == np.bool_):
         return mask
     arr = np.asarray(mask)
-    if arr.dtype.kind in "iu" and arr.size and arr.min() >= 0 and arr.max() <= 1:
-        return arr.astype(bool)
+    if arr.dtype.kind in "iu":  # gymnasium's int8 masks: nonzero means allowed
+        return arr != 0
     return arr  # let the agent's own check report anything stranger
 
 
