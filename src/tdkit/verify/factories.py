@@ -15,6 +15,9 @@ class AgentFactory:
     """``make_agent(env, seed)`` that builds ``cls.for_env(env, seed=seed, **kwargs)``.
 
     Classes without ``for_env`` are called as ``cls(env, seed=seed, **kwargs)``.
+    Keywords passed to the call add to (and override) ``kwargs``, so one
+    factory serves every setting of a :func:`tdkit.sweep.run_sweep`:
+    ``make(env, seed, step_size=0.5)``.
     Instances pickle (when ``cls`` and the keyword values do), so they can be
     sent to the worker processes of a ``concurrent.futures`` executor.
     """
@@ -22,11 +25,12 @@ class AgentFactory:
     cls: Any
     kwargs: dict[str, Any] = field(default_factory=dict)
 
-    def __call__(self, env: Any, seed: int) -> Any:
+    def __call__(self, env: Any, seed: int, **setting: Any) -> Any:
+        kwargs = {**self.kwargs, **setting} if setting else self.kwargs
         build = getattr(self.cls, "for_env", None)
         if build is not None:
-            return build(env, seed=seed, **self.kwargs)
-        return self.cls(env, seed=seed, **self.kwargs)
+            return build(env, seed=seed, **kwargs)
+        return self.cls(env, seed=seed, **kwargs)
 
     def __repr__(self) -> str:
         args = "".join(f", {k}={v!r}" for k, v in self.kwargs.items())

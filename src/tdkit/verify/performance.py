@@ -25,7 +25,6 @@ References
 
 from __future__ import annotations
 
-import numbers
 from collections.abc import Callable, Iterable
 from concurrent.futures import Executor
 from dataclasses import dataclass
@@ -33,9 +32,8 @@ from typing import Any
 
 import numpy as np
 
-from .._errors import InvalidParameterError
+from .._runs import check_callable, check_executor, check_seeds, train_run
 from .._validation import check_in_range, check_positive_int
-from ..loop import evaluate, train
 from ..stats import ConfidenceInterval, WelchResult, bootstrap_ci, welch_test
 
 __all__ = ["AgentScores", "PerformanceComparison", "compare_performance", "run_score"]
@@ -96,13 +94,9 @@ def run_score(
     environment seeds of two children of ``SeedSequence(seed)``. Module
     level, so executors can pickle it.
     """
-    env = make_env()
-    agent = make_agent(env, seed)
     train_root, eval_root = np.random.SeedSequence(seed).spawn(2)
-    train(agent, env, episodes=episodes, seed=train_root, max_episode_steps=max_episode_steps)
-    returns = evaluate(
-        agent, env, episodes=eval_episodes, seed=eval_root, max_episode_steps=max_episode_steps
-    )
+    _, returns = train_run(make_agent, make_env, seed, train_root, eval_root, episodes, None,
+                           max_episode_steps, eval_episodes)
     return float(np.mean(returns))
 
 
@@ -177,16 +171,8 @@ def compare_performance(
     """
     owner = "compare_performance"
     for name, value in (("make_a", make_a), ("make_b", make_b), ("make_env", make_env)):
-        if not callable(value):
-            raise InvalidParameterError(f"{owner}: {name} must be callable; got {value!r:.80}.")
-    seed_list = tuple(seeds)
-    if len(seed_list) < 2 or any(
-        isinstance(s, bool) or not isinstance(s, numbers.Integral) or s < 0 for s in seed_list
-    ):
-        raise InvalidParameterError(
-            f"{owner}: seeds must hold at least 2 non-negative ints; got {seed_list!r:.80}."
-        )
-    seed_list = tuple(int(s) for s in seed_list)
+        check_callable(owner, name, value)
+    seed_list = check_seeds(owner, seeds, minimum=2, distinct=False)
     episodes = check_positive_int(owner, "episodes", episodes)
     eval_episodes = check_positive_int(owner, "eval_episodes", eval_episodes)
     if max_episode_steps is not None:
@@ -194,11 +180,8 @@ def compare_performance(
     confidence = check_in_range(owner, "confidence", confidence, 0.0, 1.0,
                                 low_open=True, high_open=True)
     n_resamples = check_positive_int(owner, "n_resamples", n_resamples)
-    if executor is not None and not callable(getattr(executor, "map", None)):
-        raise InvalidParameterError(
-            f"{owner}: executor must be a concurrent.futures.Executor (or have map); "
-            f"got {executor!r:.80}."
-        )
+    if executor is not None:
+        check_executor(owner, executor)
     settings = (episodes, eval_episodes, max_episode_steps)
     summaries = []
     for label, make, offset in zip(labels, (make_a, make_b), (0, B_SEED_OFFSET), strict=True):

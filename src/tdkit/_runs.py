@@ -1,0 +1,112 @@
+"""Independent training runs: the pieces shared by :mod:`tdkit.sweep` and
+:func:`tdkit.verify.compare_performance`.
+
+A *run* builds a fresh environment and agent, trains the agent and,
+optionally, scores it with greedy episodes. Runs share nothing, so they can go
+to any :class:`concurrent.futures.Executor`; :func:`train_run` is module level
+so process pools can pickle it (the factories it receives must pickle too).
+"""
+
+from __future__ import annotations
+
+import numbers
+import pickle
+from collections.abc import Callable, Iterable, Mapping
+from typing import Any
+
+import numpy as np
+
+from ._errors import InvalidParameterError
+from .history import History
+from .loop import evaluate, train
+
+__all__ = ["check_callable", "check_executor", "check_picklable", "check_seeds", "train_run"]
+
+
+def train_run(
+    make_agent: Callable[..., Any],
+    make_env: Callable[[], Any],
+    agent_seed: int,
+    train_seed: np.random.SeedSequence,
+    eval_seed: np.random.SeedSequence,
+    episodes: int | None,
+    steps: int | None,
+    max_episode_steps: int | None,
+    eval_episodes: int,
+    setting: Mapping[str, Any] | None = None,
+) -> tuple[History, np.ndarray | None]:
+    """Train ``make_agent(env, agent_seed, **setting)`` on ``make_env()``; evaluate greedily.
+
+    Training uses the per-episode environment seeds of ``train_seed`` and
+    evaluation those of ``eval_seed`` (see :func:`tdkit.loop.episode_seed`);
+    ``max_episode_steps`` limits both.
+
+    Returns
+    -------
+    (History, numpy.ndarray or None)
+        The training history and the returns of ``eval_episodes`` greedy
+        episodes (None when ``eval_episodes`` is 0).
+    """
+    env = make_env()
+    agent = make_agent(env, agent_seed, **(setting or {}))
+    history = train(agent, env, episodes=episodes, steps=steps, seed=train_seed,
+                    max_episode_steps=max_episode_steps)
+    if not eval_episodes:
+        return history, None
+    returns = evaluate(agent, env, episodes=eval_episodes, seed=eval_seed,
+                       max_episode_steps=max_episode_steps)
+    return history, returns
+
+
+def check_callable(owner: str, name: str, value: Any) -> None:
+    """Raise naming ``owner`` and ``name`` unless ``value`` is callable."""
+    if not callable(value):
+        raise InvalidParameterError(f"{owner}: {name} must be callable; got {value!r:.80}.")
+
+
+def check_seeds(
+    owner: str, seeds: Iterable[Any], *, minimum: int = 1, distinct: bool = True
+) -> tuple[int, ...]:
+    """Return ``seeds`` as a tuple of non-negative ints (at least ``minimum``; distinct)."""
+    try:
+        seed_list = tuple(seeds)
+    except TypeError:
+        raise InvalidParameterError(
+            f"{owner}: seeds must be an iterable of non-negative ints such as range(10); "
+            f"got {seeds!r:.80}."
+        ) from None
+    if len(seed_list) < minimum or any(
+        isinstance(s, bool) or not isinstance(s, numbers.Integral) or s < 0 for s in seed_list
+    ):
+        raise InvalidParameterError(
+            f"{owner}: seeds must hold at least {minimum} non-negative int"
+            f"{'s' if minimum > 1 else ''}; got {seed_list!r:.80}."
+        )
+    result = tuple(int(s) for s in seed_list)
+    if distinct and len(set(result)) != len(result):
+        repeated = sorted({s for s in result if result.count(s) > 1})
+        raise InvalidParameterError(
+            f"{owner}: seeds must be distinct (a repeated seed repeats a run exactly); "
+            f"got {repeated!r} more than once."
+        )
+    return result
+
+
+def check_executor(owner: str, executor: Any, method: str = "map") -> None:
+    """Raise unless ``executor`` has a callable ``method`` (``map`` or ``submit``)."""
+    if not callable(getattr(executor, method, None)):
+        raise InvalidParameterError(
+            f"{owner}: executor must be a concurrent.futures.Executor (or have {method}); "
+            f"got {executor!r:.80}."
+        )
+
+
+def check_picklable(owner: str, name: str, value: Any, fix: str) -> None:
+    """Raise naming ``name`` if ``value`` cannot be sent to a worker process."""
+    try:
+        pickle.dumps(value)
+    except Exception as exc:  # pickling raises several types (PicklingError, AttributeError)
+        raise InvalidParameterError(
+            f"{owner}: {name}={value!r:.80} cannot be sent to worker processes "
+            f"({type(exc).__name__}: {exc}). {fix}"
+        ) from None
