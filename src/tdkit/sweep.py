@@ -102,8 +102,6 @@ class SweepRunError(TdkitError, RuntimeError):
         return type(self), (str(self), self.setting, self.setting_index, self.seed)
 
 
-SweepRunError.__module__ = "tdkit.sweep"
-
 
 # ---------------------------------------------------------------- settings and seeds
 def expand_settings(settings: Mapping[str, Any] | Sequence[Mapping[str, Any]] | None,
