@@ -6,7 +6,7 @@ dynamic-programming optimum, and verify your own agents against them.
 
 from __future__ import annotations
 
-from . import dp, encoders, envs, exploration, schedules, stats, testing, verify
+from . import dp, encoders, envs, exploration, plot, schedules, stats, sweep, testing, verify
 from ._errors import (
     CapacityError,
     EnvironmentProtocolError,
@@ -93,8 +93,10 @@ __all__ = [
     "encoders",
     "envs",
     "exploration",
+    "plot",
     "schedules",
     "stats",
+    "sweep",
     "testing",
     "verify",
     # errors
