@@ -34,7 +34,7 @@ from tdkit.batch import LEARNERS, BatchResult, _greedy_rows, train_batch
 from tdkit.dp import action_values, evaluate_policy, value_iteration
 from tdkit.envs.problems import cliff_walking, garnet, maximization_bias
 from tdkit.exploration import EpsilonGreedy, Softmax
-from tdkit.schedules import Exponential, Linear, VisitCount
+from tdkit.schedules import Exponential, Linear, Schedule, VisitCount
 
 SCALAR = {
     "q_learning": tdkit.QLearning,
@@ -133,11 +133,28 @@ def fork(gamma: float = 0.9) -> tuple[FiniteMDP, np.ndarray, np.ndarray]:
 
 
 # --------------------------------------------------------------------------- 1. exact
+class _StepAndVisits(Schedule):
+    """A user-defined per-pair schedule that also reads the step:
+    alpha = 0.1 + 0.9 / (n + t / 100), in [0.1, 1]."""
+
+    per_visit = True
+
+    def value(self, step: int, visits: int = 1) -> float:
+        return 0.1 + 0.9 / (max(visits, 1) + step / 100)
+
+    def bounds(self) -> tuple[float, float]:
+        return (0.1, 1.0)
+
+    def describe(self) -> dict:
+        return {"kind": "step_and_visits"}
+
+
 STEP_SIZES = {
     "constant": 0.5,
     "visit_count": VisitCount(power=0.7),
     # By step: an off-by-one in the step index the batch passes would change every update.
     "linear": Linear(1.0, 0.05, duration=300),
+    "custom_per_visit": _StepAndVisits(),
 }
 
 

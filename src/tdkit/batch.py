@@ -201,7 +201,7 @@ class _StepSizes:
         self.schedule = schedule
         self.constant = schedule.constant if isinstance(schedule, Constant) else None
         self.per_visit = bool(schedule.per_visit)
-        self.lookup = isinstance(schedule, VisitCount)
+        self.lookup = type(schedule) is VisitCount  # a subclass might read the step
         self._table = np.empty(0)
 
     def _grow(self, largest: int) -> None:
