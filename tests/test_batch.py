@@ -29,8 +29,8 @@ from scipy import stats
 
 import tdkit
 from tdkit import FiniteMDP, InvalidParameterError
-from tdkit._greedy import greedy_action
-from tdkit.batch import LEARNERS, BatchResult, _greedy_rows, train_batch
+from tdkit._greedy import greedy_action, greedy_rows
+from tdkit.batch import LEARNERS, BatchResult, train_batch
 from tdkit.dp import action_values, evaluate_policy, value_iteration
 from tdkit.envs.problems import cliff_walking, garnet, maximization_bias
 from tdkit.exploration import EpsilonGreedy, Softmax
@@ -340,7 +340,7 @@ def test_row_wise_greedy_uses_the_scalar_rule():
     for values in rows:
         scalar = greedy_action(values, None, np.random.default_rng(9))
         u = np.random.default_rng(9).random()
-        assert _greedy_rows(values[None, :], np.array([u]))[0] == scalar
+        assert greedy_rows(values[None, :], np.array([u]))[0] == scalar
 
 
 def test_epsilon_greedy_frequencies():

@@ -6,7 +6,7 @@ dynamic-programming optimum, and verify your own agents against them.
 
 from __future__ import annotations
 
-from . import dp, encoders, envs, exploration, plot, schedules, stats, sweep, testing, verify
+from . import batch, dp, encoders, envs, exploration, plot, schedules, stats, sweep, testing, verify
 from ._errors import (
     CapacityError,
     EnvironmentProtocolError,
@@ -89,6 +89,7 @@ __all__ = [
     "policy_iteration",
     "value_iteration",
     # modules
+    "batch",
     "dp",
     "encoders",
     "envs",

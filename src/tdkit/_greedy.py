@@ -16,6 +16,7 @@ from ._errors import InvalidParameterError
 
 __all__ = [
     "allowed_indices",
+    "greedy_rows",
     "check_mask",
     "greedy_action",
     "masked_max",
@@ -107,3 +108,28 @@ def masked_mean(values: np.ndarray, mask: np.ndarray | None) -> float:
     if mask is None:
         return float(values.mean())
     return float(values[mask].mean())
+
+
+def greedy_rows(rows: np.ndarray, u: np.ndarray) -> np.ndarray:
+    """Greedy action of each row of ``rows`` (shape (K, A)), ties broken uniformly.
+
+    Row ``i`` picks tie ``floor(u[i] * k_i)`` (in index order) of its ``k_i``
+    maximal entries, the rule of :func:`greedy_action` applied
+    to every row at once, so each tied action has probability ``1 / k_i``.
+
+    Raises
+    ------
+    FloatingPointError
+        If a row contains NaN (greedy is then undefined).
+    """
+    ties = rows == rows.max(axis=1, keepdims=True)
+    rank = ties.cumsum(axis=1)  # rank[i, j]: maximal entries among rows[i, :j + 1]
+    counts = rank[:, -1]
+    if not counts.all():
+        bad = int(np.argmin(counts))
+        raise FloatingPointError(
+            f"greedy choice is undefined for learner {bad}: its action values "
+            f"contain NaN ({rows[bad]!r}). Check rewards and step sizes for overflow."
+        )
+    pick = (u * counts).astype(np.intp)
+    return (rank > pick[:, None]).argmax(axis=1)

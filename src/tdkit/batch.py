@@ -54,6 +54,7 @@ from typing import Any
 import numpy as np
 
 from ._errors import InvalidParameterError
+from ._greedy import greedy_rows
 from ._seeding import SeedLike, as_generator
 from ._validation import check_in_range, check_positive_int
 from .dp import greedy_policy
@@ -147,37 +148,12 @@ class BatchResult:
 
 
 # --------------------------------------------------------------------------- row-wise choices
-def _greedy_rows(rows: np.ndarray, u: np.ndarray) -> np.ndarray:
-    """Greedy action of each row of ``rows`` (shape (K, A)), ties broken uniformly.
-
-    Row ``i`` picks tie ``floor(u[i] * k_i)`` (in index order) of its ``k_i``
-    maximal entries, the rule of :func:`tdkit._greedy.greedy_action` applied
-    to every row at once, so each tied action has probability ``1 / k_i``.
-
-    Raises
-    ------
-    FloatingPointError
-        If a row contains NaN (greedy is then undefined).
-    """
-    ties = rows == rows.max(axis=1, keepdims=True)
-    rank = ties.cumsum(axis=1)  # rank[i, j]: maximal entries among rows[i, :j + 1]
-    counts = rank[:, -1]
-    if not counts.all():
-        bad = int(np.argmin(counts))
-        raise FloatingPointError(
-            f"train_batch: greedy choice is undefined for learner {bad}: its action values "
-            f"contain NaN ({rows[bad]!r}). Check rewards and step sizes for overflow."
-        )
-    pick = (u * counts).astype(np.intp)
-    return (rank > pick[:, None]).argmax(axis=1)
-
-
 def _epsilon_greedy_rows(
     rows: np.ndarray, eps: float, u_explore: np.ndarray, u_action: np.ndarray,
     u_tie: np.ndarray,
 ) -> np.ndarray:
     """ε-greedy action of each row: uniform with probability ``eps``, else greedy."""
-    greedy = _greedy_rows(rows, u_tie)
+    greedy = greedy_rows(rows, u_tie)
     if eps <= 0.0:
         return greedy
     n_actions = rows.shape[1]
@@ -525,7 +501,7 @@ class _Lockstep:
                 update_a = u[5] < 0.5
                 upd = np.where(update_a, 0, 1)
                 upd_rows = q_rows[upd * (K * S) + row_base + s2]
-                best = _greedy_rows(upd_rows, u[6])
+                best = greedy_rows(upd_rows, u[6])
                 evaluated = q_rows[(1 - upd) * (K * S) + row_base + s2, best]
                 entry = upd * table_size + entry
                 boot = evaluated
