@@ -10,8 +10,8 @@ so process pools can pickle it (the factories it receives must pickle too).
 from __future__ import annotations
 
 import numbers
-import pickle
 from collections.abc import Callable, Iterable, Mapping
+from multiprocessing.reduction import ForkingPickler
 from typing import Any
 
 import numpy as np
@@ -104,7 +104,7 @@ def check_executor(owner: str, executor: Any, method: str = "map") -> None:
 def check_picklable(owner: str, name: str, value: Any, fix: str) -> None:
     """Raise naming ``name`` if ``value`` cannot be sent to a worker process."""
     try:
-        pickle.dumps(value)
+        ForkingPickler.dumps(value)  # exactly what a process pool does to send it
     except Exception as exc:  # pickling raises several types (PicklingError, AttributeError)
         raise InvalidParameterError(
             f"{owner}: {name}={value!r:.80} cannot be sent to worker processes "
