@@ -130,3 +130,18 @@ def test_constant_schedule_round_trip_describe():
         assert schedule_from_description(sched.describe()) == sched
     for rule in (EpsilonGreedy(Linear(1, 0.1, 5)), Softmax(0.5), UCB(2.0)):
         assert exploration_from_description(rule.describe()).describe() == rule.describe()
+
+
+def test_learners_pass_visit_counts_to_ucb():
+    # UCB tries every untried action first (Sutton & Barto 2018, Section 2.7): a
+    # learner that failed to hand it the counts would raise or repeat actions.
+    import tdkit
+
+    agent = tdkit.QLearning(1, 4, exploration=UCB(c=1.0), seed=0)
+    taken = []
+    for _ in range(4):
+        a = agent.act(0)
+        taken.append(a)
+        agent.observe(0, a, 0.0, 0, True, False)
+        agent.update()
+    assert sorted(taken) == [0, 1, 2, 3]

@@ -305,9 +305,13 @@ class TabularAgent:
         values = self._behaviour_values(s)
         if explore:
             return self._explore.select(
-                values, mask, self._rng, step=self.steps_, counts=self._visits[s]
+                values, mask, self._rng, step=self.steps_, counts=self._counts_for(s)
             )
         return greedy_action(values, mask, self._rng)
+
+    def _counts_for(self, s: int) -> np.ndarray | None:
+        """The visit counts of ``s`` when the exploration rule reads them, else None."""
+        return self._visits[s] if self._explore.uses_counts else None
 
     def observe(
         self,

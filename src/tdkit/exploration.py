@@ -24,7 +24,7 @@ from __future__ import annotations
 
 import math
 from abc import ABC, abstractmethod
-from typing import Any
+from typing import Any, ClassVar
 
 import numpy as np
 
@@ -40,8 +40,12 @@ class Exploration(ABC):
     """Base class of exploration rules.
 
     ``step`` is the learner's step counter (for schedules); ``counts`` is the
-    row of visit counts ``n(s, .)`` of the current state (used by UCB).
+    row of visit counts ``n(s, .)`` of the current state, passed only to rules
+    that set :attr:`uses_counts` (UCB), so the others cost nothing for it.
     """
+
+    #: Whether the rule reads the visit counts ``n(s, .)``.
+    uses_counts: ClassVar[bool] = False
 
     @abstractmethod
     def select(
@@ -213,6 +217,8 @@ class UCB(Exploration):
     c : float
         Exploration weight, ``c >= 0`` (``c = 0`` is greedy).
     """
+
+    uses_counts: ClassVar[bool] = True
 
     def __init__(self, c: float = 2.0) -> None:
         self.c = check_real("UCB", "c", c)

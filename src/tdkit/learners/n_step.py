@@ -203,7 +203,7 @@ class NStepSarsa(CommitsNextAction, _NStepLearner):
             ties &= mask
         target = 1.0 / int(ties.sum())
         behaviour = float(
-            self._explore.probabilities(row, mask, step=self.steps_, counts=self._visits[s])[a]
+            self._explore.probabilities(row, mask, step=self.steps_, counts=self._counts_for(s))[a]
         )
         return target / behaviour if behaviour > 0.0 else 0.0
 

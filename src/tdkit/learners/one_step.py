@@ -172,7 +172,7 @@ class ExpectedSarsa(TabularAgent):
             target = r
         else:
             target = r + self.gamma * self._explore.expected_value(
-                self._q[s2], next_mask, step=self.steps_, counts=self._visits[s2]
+                self._q[s2], next_mask, step=self.steps_, counts=self._counts_for(s2)
             )
         return (self._td_step(self._q, self._visits, s, a, target),)
 
