@@ -220,3 +220,24 @@ def test_saving_mid_episode_is_refused_with_the_reason(tmp_path):
     agent.update()  # the 3-step return is not complete: the step stays buffered
     with pytest.raises(StoreError, match="middle of an episode"):
         tdkit.save(agent, tmp_path / "x.npz")
+
+
+def test_checkpoints_are_taken_at_episode_boundaries_only(tmp_path):
+    # A step budget that ends mid-episode must not checkpoint the half episode:
+    # multi-step buffers would be mid-flight, and a resumed run would skip the
+    # rest of that episode, which the uninterrupted run plays out.
+    env = gym.make("FrozenLake-v1")
+
+    def fresh():
+        return tdkit.NStepSarsa(16, 4, n=3, gamma=0.95, step_size=0.2, seed=5)
+
+    whole = fresh()
+    h_whole = tdkit.train(whole, env, episodes=40, seed=2)
+    ckpt = tmp_path / "run.npz"
+    partial = fresh()
+    h_part = tdkit.train(partial, env, steps=100, seed=2, checkpoint=ckpt, checkpoint_every=1)
+    assert h_part.to_records()[-1]["end"] == "unfinished"  # the budget cut an episode
+    resumed = fresh()
+    h_resumed = tdkit.train(resumed, env, episodes=40, seed=2, resume=ckpt)
+    np.testing.assert_array_equal(h_resumed.returns, h_whole.returns)
+    np.testing.assert_array_equal(resumed.table, whole.table)

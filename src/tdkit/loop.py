@@ -114,7 +114,8 @@ def train(
         training.
     checkpoint : path-like, optional
         Write a checkpoint (learner state, loop position, History) to this
-        ``.npz`` file every ``checkpoint_every`` episodes and at the end.
+        ``.npz`` file every ``checkpoint_every`` episodes and at the end, always
+        at an episode boundary (an episode cut by ``steps`` is not saved).
     resume : path-like, optional
         Continue the run saved in this checkpoint: the agent (built with the
         same hyper-parameters) gets the saved state, and training continues
@@ -157,6 +158,7 @@ def train(
     if resume is not None:
         root, episode, total, history = _resume(resume, agent, root, seed)
     bar = _progress_bar(episodes, progress)
+    end = "terminated"  # how the last episode ended
     act, observe, update, step_env = agent.act, agent.observe, agent.update, env.step
     try:
         while (episodes is None or episode < episodes) and (steps is None or total < steps):
@@ -197,14 +199,16 @@ def train(
             episode += 1
             if bar is not None:
                 bar.update(1)
-            if checkpoint is not None and episode % checkpoint_every == 0:
+            # Checkpoints are taken at episode boundaries only: a resumed run then
+            # starts a fresh episode exactly where the uninterrupted run would.
+            if checkpoint is not None and end != "unfinished" and episode % checkpoint_every == 0:
                 _checkpoint(checkpoint, agent, root, episode, total, history)
             if any([bool(cb(history, agent)) for cb in callbacks]):
                 break
     finally:
         if bar is not None:
             bar.close()
-    if checkpoint is not None and episode % checkpoint_every != 0:
+    if checkpoint is not None and end != "unfinished" and episode % checkpoint_every != 0:
         _checkpoint(checkpoint, agent, root, episode, total, history)
     return history
 
