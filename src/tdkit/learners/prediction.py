@@ -153,7 +153,7 @@ class _PolicyLearner(TabularAgent):
         cum = self._policy_cum[s]  # type: ignore[index]
         if mask is None:
             # u < cum[-1], so the first cum > u has positive probability.
-            a = int(np.searchsorted(cum, self._rng.random() * cum[-1], side="right"))
+            a = int(cum.searchsorted(self._rng.random() * cum[-1], side="right"))
             return min(a, self.n_actions - 1)
         probs = np.diff(cum, prepend=0.0) * mask
         total = probs.sum()
@@ -164,7 +164,7 @@ class _PolicyLearner(TabularAgent):
                 "allowed actions."
             )
         cum = np.cumsum(probs)
-        a = min(int(np.searchsorted(cum, self._rng.random() * total, side="right")),
+        a = min(int(cum.searchsorted(self._rng.random() * total, side="right")),
                 self.n_actions - 1)
         while probs[a] == 0.0:
             a -= 1
