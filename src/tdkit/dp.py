@@ -784,3 +784,9 @@ def policy_iteration(
         stacklevel=2,
     )
     return _finish(mdp, evaluate_policy(mdp, policy), max_iterations)
+
+
+# Average reward lives in its own module; re-exported so tdkit.dp reaches it too.
+from .dp_average import AverageSolution, policy_gain, relative_value_iteration  # noqa: E402
+
+__all__ += ["AverageSolution", "policy_gain", "relative_value_iteration"]
