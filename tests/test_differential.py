@@ -227,14 +227,15 @@ class _TimeLimitIsTerminal(DifferentialQLearning):
                         next_mask=next_mask)
 
 
-class _AverageOfRewards(DifferentialQLearning):
-    """Another: the average tracks the rewards seen (the behaviour's gain), not delta."""
+class _AverageOfRewards(tdkit.DifferentialQLearning):
+    """Bug: the average follows the rewards seen (the behaviour's gain), not the TD error."""
 
     def _differential_step(self, s, a, target):
-        r = target + self.average_reward - self._q[s].max()  # undo the target's pieces
-        delta = self._td_step(self._q, self._visits, s, a, target)
-        self.average_reward += 0.01 * (r - self.average_reward)
-        return delta
+        return self._td_step(self._q, self._visits, s, a, target)
+
+    def observe(self, obs, action, reward, *args, **kwargs):
+        super().observe(obs, action, reward, *args, **kwargs)
+        self.average_reward += 0.01 * (reward - self.average_reward)
 
 
 class _NoAverage(DifferentialQLearning):

@@ -209,11 +209,15 @@ def check_average_reward(
     True
     """
     env = average_probe().to_env(PROBE_TIME_LIMIT)
-    reproduce = (
-        f"reproduce: env = tdkit.verify._average_checks.average_probe(prediction=...)"
-        f".to_env({PROBE_TIME_LIMIT}); tdkit.train(make_agent(env, {seed}), env, "
-        f"episodes={PROBE_EPISODES}, seed={seed})"
-    )
+
+    def reproduce(prediction: bool) -> str:
+        return (
+            f"reproduce: env = tdkit.verify._average_checks.average_probe(prediction="
+            f"{prediction}).to_env({PROBE_TIME_LIMIT}); agent = make_agent(env, {seed}); "
+            f"tdkit.train(agent, env, episodes={PROBE_EPISODES}, seed={seed})"
+        )
+
+    prediction = False
     try:
         agent = build_agent(make_agent, env, seed)
         obs, _ = env.reset(seed=seed)
@@ -229,13 +233,15 @@ def check_average_reward(
         readings = _Readings(agent)
         run_episodes(agent, env, episodes=PROBE_EPISODES, seed=seed, watcher=readings)
     except AgentFault as fault:
-        return False, f"{fault} (seed {seed}); {reproduce}"
+        return False, f"{fault} (seed {seed}); {reproduce(prediction)}"
     exact = relative_value_iteration(env.unwrapped.mdp).gain
     values = readings.values
     tail = np.asarray(values[len(values) - len(values) // 2:])
     tail = tail[len(tail) % N_BATCHES:]
     if not np.isfinite(tail).all():
-        return False, f"average_reward became non-finite (seed {seed}); {reproduce}"
+        return False, (
+            f"average_reward became non-finite (seed {seed}); {reproduce(prediction)}"
+        )
     batches = tail.reshape(N_BATCHES, -1).mean(axis=1)
     mean = float(batches.mean())
     spread = float(batches.std(ddof=1))
@@ -250,4 +256,4 @@ def check_average_reward(
     )
     if abs(error) <= margin:
         return True, text
-    return False, f"{text}; seed {seed}; {reproduce}"
+    return False, f"{text}; seed {seed}; {reproduce(prediction)}"
