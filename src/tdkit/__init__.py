@@ -16,6 +16,7 @@ from ._errors import (
 )
 from .agent import Agent, TabularAgent
 from .dp import (
+    ConvergenceError,
     GreedyPolicy,
     Solution,
     action_values,
@@ -102,6 +103,7 @@ __all__ = [
     "verify",
     # errors
     "CapacityError",
+    "ConvergenceError",
     "EnvironmentProtocolError",
     "InvalidParameterError",
     "StoreError",
