@@ -28,6 +28,7 @@ from .dp import (
     policy_iteration,
     value_iteration,
 )
+from .dp_solve import solve
 from .envs.finite import FiniteMDP
 from .history import History
 from .learners import (
@@ -88,6 +89,7 @@ __all__ = [
     "evaluate_policy",
     "greedy_policy",
     "policy_iteration",
+    "solve",
     "value_iteration",
     # modules
     "batch",

@@ -669,6 +669,17 @@ class FiniteMDP:
             )
         return self._successor_cache
 
+    def _successor_arrays(self) -> tuple[np.ndarray, np.ndarray]:
+        """``(next_states, probs)`` of :attr:`successors` without building the rewards.
+
+        For a sparse model these are the stored arrays (no copy), so solvers
+        of 10^6-state models do not materialise an (S, A, K) reward array.
+        """
+        if self._next is not None and self._probs is not None:
+            return self._next, self._probs
+        next_states, probs, _ = self.successors
+        return next_states, probs
+
     # ------------------------------------------------------------------ algebra
     def expected_next(self, v: np.ndarray) -> np.ndarray:
         r"""Return :math:`\sum_{s'} P(s' \mid s, a)\, v(s')` for every pair, shape ``(S, A)``.
