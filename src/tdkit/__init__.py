@@ -15,6 +15,7 @@ from ._errors import (
     TdkitError,
 )
 from .agent import Agent, TabularAgent
+from .agent_greedy import agent_policy
 from .dp import (
     ConvergenceError,
     GreedyPolicy,
@@ -83,6 +84,7 @@ __all__ = [
     "GreedyPolicy",
     "Solution",
     "action_values",
+    "agent_policy",
     "bellman_expectation_operator",
     "bellman_optimality_operator",
     "bellman_residual",
