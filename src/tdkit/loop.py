@@ -16,6 +16,7 @@ from collections.abc import Callable, Iterable
 from pathlib import Path
 from typing import Any
 
+import gymnasium
 import numpy as np
 
 from ._errors import InvalidParameterError
@@ -25,6 +26,7 @@ from .history import History
 from .runs.episode import run_episode
 from .runs.fit import check_agent_fits
 from .runs.seeds import episode_seed, root_sequence
+from .runs.vector import train_vector
 
 __all__ = ["episode_seed", "evaluate", "train"]
 
@@ -63,7 +65,7 @@ def train(
     resume: Any = None,
     use_action_masks: bool = True,
     checkpoint_every: int = 100,
-) -> History:
+) -> History | list[History]:
     """Train ``agent`` on ``env`` and return the per-episode :class:`History`.
 
     Each step runs ``act -> env.step -> observe -> update``. The action mask
@@ -72,11 +74,17 @@ def train(
 
     Parameters
     ----------
-    agent : Agent
-        Any object with ``act``, ``observe`` and ``update``.
+    agent : Agent or list of Agent
+        Any object with ``act``, ``observe`` and ``update``; a list with one
+        agent per sub-environment when ``env`` is a vector environment.
     env : environment
         Anything :func:`tdkit.envs.adapt` accepts (gymnasium env or id,
-        legacy gym-style, dm_env-style, or a plain reset/step object).
+        legacy gym-style, dm_env-style, or a plain reset/step object), or a
+        ``gymnasium.vector.VectorEnv`` (both autoreset modes, next step and
+        same step; see :mod:`tdkit.runs.vector`): agent ``k`` then trains on
+        sub-environment ``k`` exactly as ``train(agents[k], env,
+        seed=tdkit.runs.agent_roots(seed, K)[k])`` would, and ``episodes`` and
+        ``steps`` are budgets per agent.
     episodes, steps : int, optional
         Stop after this many episodes or environment steps, whichever comes
         first; at least one is required. An episode cut by ``steps`` is
@@ -111,6 +119,8 @@ def train(
     Returns
     -------
     History
+        Or, for a ``gymnasium.vector.VectorEnv``, a list with one History per
+        sub-environment.
 
     Raises
     ------
@@ -129,6 +139,20 @@ def train(
     if max_episode_steps is not None:
         max_episode_steps = check_positive_int("train", "max_episode_steps", max_episode_steps)
     checkpoint_every = check_positive_int("train", "checkpoint_every", checkpoint_every)
+    if isinstance(env, gymnasium.vector.VectorEnv):
+        extras = {"checkpoint": checkpoint, "resume": resume, "callbacks": tuple(callbacks),
+                  "progress": progress}
+        given = [k for k, v in extras.items() if v not in (None, (), False)]
+        if given:
+            raise InvalidParameterError(
+                f"train: {', '.join(given)} cannot be used with a vector environment; train "
+                "each agent on its own environment for those features."
+            )
+        agents = [agent] if not isinstance(agent, (list, tuple)) else agent
+        return train_vector(
+            agents, env, episodes=episodes, steps=steps, seed=seed,
+            max_episode_steps=max_episode_steps, use_action_masks=use_action_masks,
+        )
     env = adapt(env)
     check_agent_fits(agent, env, owner="train")
     if checkpoint is not None:
