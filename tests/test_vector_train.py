@@ -36,8 +36,11 @@ def _scalar_runs(make_agent, env_id, limit, *, seed, episodes=None, steps=None,
     env = _make(env_id, limit)()
     agents = _agents(make_agent, env)
     roots = agent_roots(seed, K)
-    hists = [tdkit.train(a, env, episodes=episodes, steps=steps, seed=r,
-                         max_episode_steps=max_episode_steps) for a, r in zip(agents, roots, strict=True)]
+    hists = [
+        tdkit.train(a, env, episodes=episodes, steps=steps, seed=r,
+                    max_episode_steps=max_episode_steps)
+        for a, r in zip(agents, roots, strict=True)
+    ]
     return agents, hists
 
 
