@@ -24,12 +24,14 @@ import numpy as np
 from .._errors import InvalidParameterError
 from .._seeding import SeedLike, as_generator
 from .._validation import check_in_range, check_positive_int, check_real
+from .access_control import access_control
 from .finite import FiniteMDP
 
 __all__ = [
     "GRID_ACTIONS",
     "KING_ACTIONS",
     "ChangingMaze",
+    "access_control",
     "blocking_maze",
     "cliff_walking",
     "dyna_maze",
