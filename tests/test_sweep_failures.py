@@ -169,6 +169,34 @@ def test_a_dead_worker_is_blamed_on_the_run_that_killed_it(mode, how):
     assert _comparable(healthy) == _comparable(alone)
 
 
+class KilledWorker(Exception):
+    """Stands in for dask distributed's exception of the same name (matched by name)."""
+
+
+class _ClusterThatLosesWorkers(concurrent.futures.Executor):
+    """Runs calls inline, except that a run with setting mode='kill' fails as Dask reports a
+    task that killed every worker it was tried on."""
+
+    def submit(self, fn, /, *args, **kwargs):
+        future = concurrent.futures.Future()
+        if args[1][3].get("mode") == "kill":  # (make_agent, make_env, index, setting, ...)
+            future.set_exception(KilledWorker("Attempted to run task run-1 on 4 different "
+                                              "workers, but all those workers died"))
+        else:
+            future.set_result(fn(*args, **kwargs))
+        return future
+
+
+def test_a_task_that_killed_its_dask_workers_is_named_without_a_re_run():
+    result = run_sweep(failing_agent, MAKE_ENV, seeds=[0, 1], settings={"mode": ["ok", "kill"]},
+                       episodes=3, executor=_ClusterThatLosesWorkers(), on_error="record")
+    assert [(r.setting_index, r.seed) for r in result.failures] == [(1, 0), (1, 1)]
+    assert "killed its worker processes" in result.failures[0].error
+    with pytest.raises(SweepRunError, match=r"mode='kill'.*seed 0: it killed its worker"):
+        run_sweep(failing_agent, MAKE_ENV, seeds=[0, 1], settings={"mode": ["ok", "kill"]},
+                  episodes=3, executor=_ClusterThatLosesWorkers())
+
+
 def test_a_broken_user_pool_is_replaced_and_the_remaining_runs_complete():
     settings = {"mode": ["kill", "ok"]}
     with concurrent.futures.ProcessPoolExecutor(2) as pool:
