@@ -21,6 +21,7 @@ import argparse
 import concurrent.futures
 import contextlib
 import functools
+import logging
 import os
 import time
 import warnings
@@ -54,6 +55,8 @@ def _process_pool(workers: int) -> Iterator[dict[str, Any]]:
 def _dask(workers: int) -> Iterator[dict[str, Any]]:
     import distributed
 
+    # Workers that lose the scheduler at shutdown log heartbeat errors; not ours to show.
+    logging.getLogger("distributed").setLevel(logging.CRITICAL)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         cluster = distributed.LocalCluster(n_workers=workers, threads_per_worker=1,
