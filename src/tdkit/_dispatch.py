@@ -44,7 +44,9 @@ from concurrent.futures import (
 from dataclasses import dataclass, field
 from typing import Any, NamedTuple
 
-__all__ = ["RunFailure", "RelayedWarning", "Outcome", "dispatch", "reissue_warnings"]
+from ._text import describe_exception
+
+__all__ = ["RunFailure", "RelayedWarning", "RunOutcome", "dispatch", "reissue_warnings"]
 
 
 class _RemoteTraceback(Exception):
@@ -86,7 +88,7 @@ class RunFailure:
             except Exception:  # any pickling failure means "text only"
                 payload = None
         return cls(
-            f"{type(exc).__name__}: {exc}", details, payload=payload,
+            describe_exception(exc), details, payload=payload,
             local=exc if in_process else None,
         )
 
@@ -119,7 +121,7 @@ class RelayedWarning(NamedTuple):
     lineno: int
 
 
-class Outcome(NamedTuple):
+class RunOutcome(NamedTuple):
     """What came back from one run: ``value`` or ``failure`` (one is None), and its warnings."""
 
     value: Any
@@ -157,8 +159,8 @@ def _pickles(value: Any) -> bool:
     return True
 
 
-def _guarded(fn: Callable[..., Any], args: tuple[Any, ...], origin: tuple[str, int]) -> Outcome:
-    """Run ``fn(*args)`` and return an :class:`Outcome`; never raises an ``Exception``.
+def _guarded(fn: Callable[..., Any], args: tuple[Any, ...], origin: tuple[str, int]) -> RunOutcome:
+    """Run ``fn(*args)`` and return an :class:`RunOutcome`; never raises an ``Exception``.
 
     In a process other than ``origin`` the warnings of the run are collected
     (and still shown); in the calling process they are left alone, so they
@@ -174,12 +176,12 @@ def _guarded(fn: Callable[..., Any], args: tuple[Any, ...], origin: tuple[str, i
     try:
         value = fn(*args)
     except Exception as exc:  # every failure becomes a record
-        return Outcome(None, RunFailure.from_exception(exc, in_process=in_process),
+        return RunOutcome(None, RunFailure.from_exception(exc, in_process=in_process),
                        tuple(sink or ()))
     finally:
         if sink is not None:
             _local.sink = None
-    return Outcome(value, None, tuple(sink or ()))
+    return RunOutcome(value, None, tuple(sink or ()))
 
 
 def _child(conn: Any, fn: Callable[..., Any], args: tuple[Any, ...],
@@ -188,7 +190,7 @@ def _child(conn: Any, fn: Callable[..., Any], args: tuple[Any, ...],
     conn.close()
 
 
-def _run_alone(fn: Callable[..., Any], args: tuple[Any, ...]) -> Outcome:
+def _run_alone(fn: Callable[..., Any], args: tuple[Any, ...]) -> RunOutcome:
     """Run one call in a fresh process of its own; a death of that process is the run's."""
     import multiprocessing
 
@@ -206,7 +208,7 @@ def _run_alone(fn: Callable[..., Any], args: tuple[Any, ...]) -> Outcome:
         process.join()
     if outcome is not None:
         return outcome
-    return Outcome(None, RunFailure(_death(process.exitcode), crashed=True), ())
+    return RunOutcome(None, RunFailure(_death(process.exitcode), crashed=True), ())
 
 
 def _death(exitcode: int | None) -> str:
@@ -241,8 +243,8 @@ def dispatch(
     executor: Executor | None,
     workers: int,
     stop_on_failure: bool,
-    on_done: Callable[[int, Outcome], None] | None = None,
-) -> list[Outcome | None]:
+    on_done: Callable[[int, RunOutcome], None] | None = None,
+) -> list[RunOutcome | None]:
     """Run ``fn(*args)`` for every ``args`` in ``calls``; one outcome per call, in order.
 
     Parameters
@@ -263,11 +265,11 @@ def dispatch(
     Returns
     -------
     list
-        An :class:`Outcome` per call, or None for a call never started.
+        An :class:`RunOutcome` per call, or None for a call never started.
     """
-    outcomes: list[Outcome | None] = [None] * len(calls)
+    outcomes: list[RunOutcome | None] = [None] * len(calls)
 
-    def done(index: int, outcome: Outcome) -> None:
+    def done(index: int, outcome: RunOutcome) -> None:
         outcomes[index] = outcome
         if on_done is not None:
             on_done(index, outcome)
@@ -321,7 +323,7 @@ def dispatch(
 
 def _drain(pool: Executor, fn: Callable[..., Any], calls: Sequence[tuple[Any, ...]],
            pending: list[int], origin: tuple[str, int], workers: int, stop_on_failure: bool,
-           done: Callable[[int, Outcome], None]) -> tuple[bool, set[int]]:
+           done: Callable[[int, RunOutcome], None]) -> tuple[bool, set[int]]:
     """Keep a window of calls in flight until ``pending`` is empty, a call fails, or the pool
     breaks.
 
@@ -341,7 +343,7 @@ def _drain(pool: Executor, fn: Callable[..., Any], calls: Sequence[tuple[Any, ..
                 pending.append(index)
                 broken = True
             except Exception as exc:  # e.g. the executor cannot serialise it
-                done(index, Outcome(None, RunFailure.from_exception(exc, in_process=True), ()))
+                done(index, RunOutcome(None, RunFailure.from_exception(exc, in_process=True), ()))
                 stopped = stop_on_failure
         if not in_flight:
             break
@@ -363,7 +365,7 @@ def _drain(pool: Executor, fn: Callable[..., Any], calls: Sequence[tuple[Any, ..
                     RunFailure(f"it killed its worker processes ({exc})", crashed=True)
                     if _is_killed_worker(exc) else RunFailure.from_exception(exc, in_process=True)
                 )
-                outcome = Outcome(None, failure, ())
+                outcome = RunOutcome(None, failure, ())
             done(index, outcome)
             if outcome.failure is not None and stop_on_failure:
                 stopped = True

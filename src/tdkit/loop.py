@@ -15,6 +15,7 @@ from typing import Any
 import numpy as np
 
 from ._errors import InvalidParameterError
+from ._progress import progress_bar
 from ._validation import check_positive_int
 from .envs import adapt
 from .history import History
@@ -57,16 +58,6 @@ def _root(seed: int | np.random.SeedSequence | None) -> np.random.SeedSequence:
             f"train/evaluate: seed must be an int, a SeedSequence or None; got {seed!r}."
         )
     return np.random.SeedSequence(seed)
-
-
-def _progress_bar(total: int | None, enabled: bool) -> Any:
-    if not enabled:
-        return None
-    try:
-        from tqdm.auto import tqdm
-    except ImportError as exc:  # pragma: no cover - depends on the environment
-        raise ImportError("progress=True needs tqdm: pip install 'tdkit[progress]'") from exc
-    return tqdm(total=total, unit="episode")
 
 
 def train(
@@ -157,7 +148,7 @@ def train(
     episode = 0
     if resume is not None:
         root, episode, total, history = _resume(resume, agent, root, seed)
-    bar = _progress_bar(episodes, progress)
+    bar = progress_bar("train", episodes, progress, unit="episode")
     end = "terminated"  # how the last episode ended
     act, observe, update, step_env = agent.act, agent.observe, agent.update, env.step
     try:

@@ -46,7 +46,7 @@ from typing import Any
 
 import numpy as np
 
-from ._dispatch import Outcome, RunFailure, dispatch, reissue_warnings
+from ._dispatch import RunFailure, RunOutcome, dispatch, reissue_warnings
 from ._errors import InvalidParameterError
 from ._factories import AgentFactory
 from ._progress import progress_bar
@@ -407,7 +407,7 @@ def run_sweep(
              for index, setting, seed in tasks]
     bar = progress_bar(owner, len(tasks), progress, unit="run")
 
-    def on_done(position: int, outcome: Outcome) -> None:
+    def on_done(position: int, outcome: RunOutcome) -> None:
         _, setting, seed = tasks[position]
         reissue_warnings(outcome.warnings,
                          f"run with setting {setting_label(setting)}, seed {seed}")
@@ -439,7 +439,7 @@ def run_sweep(
     return SweepResult(setting_list, seed_list, runs, evaluated=eval_episodes > 0)
 
 
-def _record(task: tuple[int, dict[str, Any], int], outcome: Outcome,
+def _record(task: tuple[int, dict[str, Any], int], outcome: RunOutcome,
             final_episodes: int) -> RunRecord:
     index, setting, seed = task
     if outcome.failure is None:

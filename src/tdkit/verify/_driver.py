@@ -18,6 +18,7 @@ from typing import Any
 import gymnasium
 import numpy as np
 
+from .._text import summarize_exception as _describe_exc
 from ..loop import episode_seed
 
 __all__ = [
@@ -41,11 +42,6 @@ class AgentFault(Exception):
         super().__init__(message)
         self.message = message
         self.where = where
-
-
-def _describe_exc(exc: BaseException) -> str:
-    text = str(exc).splitlines()[0] if str(exc) else ""
-    return f"{type(exc).__name__}: {text}" if text else type(exc).__name__
 
 
 @dataclass(frozen=True)
