@@ -20,6 +20,7 @@ import gymnasium
 import numpy as np
 
 from ._errors import InvalidParameterError
+from ._progress import progress_bar
 from ._validation import check_positive_int
 from .envs import adapt
 from .history import History
@@ -41,14 +42,6 @@ _ENDLESS_STEPS = 1_000_000
 Callback = Callable[[History, Any], Any]
 
 
-def _progress_bar(total: int | None, unit: str, enabled: bool) -> Any:
-    if not enabled:
-        return None
-    try:
-        from tqdm.auto import tqdm
-    except ImportError as exc:  # pragma: no cover - depends on the environment
-        raise ImportError("progress=True needs tqdm: pip install 'tdkit[progress]'") from exc
-    return tqdm(total=total, unit=unit)
 
 
 def train(
@@ -165,8 +158,8 @@ def train(
     if resume is not None:
         root, episode, total, history = _resume(resume, agent, root, seed)
     by_steps = steps is not None
-    bar = _progress_bar(steps if by_steps else episodes, "step" if by_steps else "episode",
-                        progress)
+    bar = progress_bar("train", steps if by_steps else episodes, progress,
+                       unit="step" if by_steps else "episode")
     warn_after = _ENDLESS_STEPS if (not by_steps and max_episode_steps is None) else None
     end = "terminated"  # how the last episode ended
     started = time.perf_counter()

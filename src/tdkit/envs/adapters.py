@@ -91,6 +91,8 @@ import gymnasium
 import numpy as np
 
 from .._errors import EnvironmentProtocolError, InvalidParameterError
+from .._text import describe as _describe
+from .._text import short as _short
 
 __all__ = ["EnvAdapter", "adapt"]
 
@@ -100,7 +102,6 @@ _GYMNASIUM_STEP = "a 5-tuple (obs, reward, terminated, truncated, info) (gymnasi
 _LEGACY_STEP = "a 4-tuple (obs, reward, done, info) (legacy gym API)"
 _DM_STEP = "a dm_env-style time step with attributes step_type, reward, discount and observation"
 _ANY_STEP = f"{_GYMNASIUM_STEP}, {_LEGACY_STEP} or {_DM_STEP}"
-_REPR_LIMIT = 200
 
 
 def adapt(env_or_id: Any, *, api: str = "auto", **make_kwargs: Any) -> gymnasium.Env:
@@ -662,15 +663,3 @@ def _detect_reset_kind(result: Any) -> str:
     if type(result) is tuple and len(result) == 2 and isinstance(result[1], dict):
         return "pair"
     return "bare"
-
-
-def _short(x: Any) -> str:
-    try:
-        text = repr(x)
-    except Exception:  # a broken __repr__ must not hide the real error
-        text = f"<{type(x).__name__} object>"
-    return text if len(text) <= _REPR_LIMIT else text[: _REPR_LIMIT - 3] + "..."
-
-
-def _describe(x: Any) -> str:
-    return f"{type(x).__name__} {_short(x)}"
