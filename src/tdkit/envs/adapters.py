@@ -205,8 +205,9 @@ class EnvAdapter(gymnasium.Env):
 
     Notes
     -----
-    ``step`` is chosen once, when the flavour is known, and then only checks
-    types with identity tests on its fast path. It returns the wrapped
+    The step function of the flavour (``_step``) is chosen once, when the
+    flavour is known, and then only checks types with identity tests on its
+    fast path. It returns the wrapped
     env's own tuple when that is already well-formed (a gymnasium-flavour
     object returning ``float``/``bool``/``dict``).
     """
@@ -230,6 +231,7 @@ class EnvAdapter(gymnasium.Env):
         # ("gymnasium", "legacy", "dm_env", "dm_env_methods"); None until detected.
         self._reset_kind: str | None = None
         self._step_kind: str | None = None
+        self._step: Callable[[Any], tuple] = self._detect_and_step
         if api == "gymnasium":
             self._reset_kind = "pair"
             self._install_step("gymnasium")
@@ -281,9 +283,12 @@ class EnvAdapter(gymnasium.Env):
     def step(self, action: Any) -> tuple:
         """Advance one step; return ``(obs, reward, terminated, truncated, info)``.
 
-        This method runs once: it detects the flavour from the first result and
-        installs the matching step function on the instance.
+        The first call detects the flavour from the result; every call then goes
+        through the step function of that flavour (``_step``).
         """
+        return self._step(action)
+
+    def _detect_and_step(self, action: Any) -> tuple:
         result = self.env.step(action)
         kind = self._step_kind_of(result, action)
         self._install_step(kind)
@@ -316,11 +321,12 @@ class EnvAdapter(gymnasium.Env):
     # method, so it is rebuilt rather than copied.
     def __getstate__(self) -> dict:
         state = self.__dict__.copy()
-        state.pop("step", None)
+        state.pop("_step", None)  # a closure over the wrapped env's bound step
         return state
 
     def __setstate__(self, state: dict) -> None:
         self.__dict__.update(state)
+        self._step = self._detect_and_step
         if self._step_kind is not None:
             self._install_step(self._step_kind)
 
@@ -399,7 +405,7 @@ class EnvAdapter(gymnasium.Env):
 
     def _install_step(self, kind: str) -> None:
         self._step_kind = kind
-        self.step = _STEP_FACTORIES[kind](self.env.step, self._name())
+        self._step = _STEP_FACTORIES[kind](self.env.step, self._name())
 
 
 # -- step functions, one per flavour ----------------------------------------------------------
