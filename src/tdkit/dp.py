@@ -1167,3 +1167,9 @@ def policy_iteration(
         "steps (ties closer than atol can make policies alternate); raise atol or "
         "max_iterations."
     )
+
+
+# Average reward lives in its own module; re-exported so tdkit.dp reaches it too.
+from .dp_average import AverageSolution, policy_gain, relative_value_iteration  # noqa: E402
+
+__all__ += ["AverageSolution", "policy_gain", "relative_value_iteration"]
