@@ -348,6 +348,12 @@ def policy_gain(mdp: FiniteMDP, policy: Any) -> float:
         If the policy is malformed, or its chain has more than one closed
         class (multichain), in which case no single gain exists.
 
+    Notes
+    -----
+    The chain is built densely (``S x S``) and solved directly, which suits
+    models up to a few thousand states; :func:`relative_value_iteration`
+    works through ``mdp.expected_next`` and handles the sparse large ones.
+
     References
     ----------
     .. [1] Puterman, M. L. (1994). Markov Decision Processes. Wiley. Section
