@@ -205,6 +205,8 @@ def relative_value_iteration(
     ref = _check_state(owner, mdp, reference_state)
     tau = _APERIODICITY
     rewards = mdp.R
+    if mdp.masks is not None:  # masked actions never enter the max (their q is -inf)
+        rewards = np.where(mdp.masks, rewards, -np.inf)
     w = np.zeros(mdp.n_states)
     span = np.inf
     for iteration in range(1, max_iterations + 1):
@@ -277,6 +279,12 @@ def _policy_matrix(owner: str, mdp: FiniteMDP, policy: Any) -> np.ndarray:
     if not np.isfinite(probs).all() or (probs < 0).any():
         raise InvalidParameterError(
             f"{owner}: policy probabilities must be finite and >= 0; got {policy!r:.80}."
+        )
+    if mdp.masks is not None and (probs[~mdp.masks] > 0).any():
+        s, a = (int(i) for i in np.argwhere((probs > 0) & ~mdp.masks)[0])
+        raise InvalidParameterError(
+            f"{owner}: the policy takes action {a} in state {s}, which the model's masks "
+            "forbid (masked); give masked actions probability 0."
         )
     sums = probs.sum(axis=1)
     off = ~mdp.terminal & (np.abs(sums - 1.0) > 1e-8)
