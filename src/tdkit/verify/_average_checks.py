@@ -33,9 +33,13 @@ batch means and :math:`t_{0.9995, 9} = 4.781` the two-sided 1/1000 quantile
 of Student's t with 9 degrees of freedom: for a correct agent whose batch
 means are unbiased and normal, the false-alarm rate is exactly 1/1000. The
 ``floor`` (``FLOOR`` = 0.05, 2.5% of the optimal gain, common practice)
-allows for the small bias a constant step size leaves. The
-measured false-alarm rate over many seeds is printed by
-``benchmarks/calibrate_average_check.py`` (see docs/average-reward.md).
+allows for the small bias a constant step size leaves.
+
+Measured (``python benchmarks/calibrate_average_check.py --seeds 300``): 0
+false alarms in 300 seeds for each of tdkit's three differential learners
+(default step sizes; SARSA with exploration decaying to 0.01), gain errors of
+mean +0.021 (Q-learning), -0.032 (SARSA), -0.022 (TD) and standard deviation
+0.035-0.039 against allowed errors of about 0.15 (see docs/average-reward.md).
 """
 
 from __future__ import annotations
