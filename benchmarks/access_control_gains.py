@@ -45,7 +45,9 @@ def main() -> None:
         agent = tdkit.DifferentialQLearning.for_env(env, seed=seed, **SETTING)
         tdkit.train(agent, env, steps=args.steps, seed=seed)
         rbar.append(agent.average_reward)
-        greedy.append(tdkit.policy_gain(mdp, agent.table.argmax(axis=1)))
+        table = agent.table  # greedy as act(explore=False) plays it: ties uniform
+        best = table == table.max(axis=1, keepdims=True)
+        greedy.append(tdkit.policy_gain(mdp, best / best.sum(axis=1, keepdims=True)))
     rbar_err = np.array(rbar) - best.gain
     rel_gap = (best.gain - np.array(greedy)) / (best.gain - everyone)
     print(f"DifferentialQLearning, {args.steps} steps, {SETTING}, seeds {args.first_seed}.."

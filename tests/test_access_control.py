@@ -139,17 +139,28 @@ def test_reachable_from_the_catalogue():
     assert tdkit.envs.problems.access_control is access_control
 
 
+def _greedy(table):
+    """The agent's greedy policy as act(explore=False) plays it: uniform over tied maxima
+    (a first-index argmax would read pairs never tried, still tied at 0, as "reject")."""
+    best = table == table.max(axis=1, keepdims=True)
+    return best / best.sum(axis=1, keepdims=True)
+
+
 def test_differential_q_learning_reaches_near_the_exact_gain(mdp, solution):
     """The greedy policy of Differential Q-learning (Wan, Naik & Sutton 2021, ICML) after
     40,000 steps earns within a quarter of the gap between the optimum and accepting
     everyone, i.e. within 0.14 of the exact gain 2.7476 (5%).
 
-    Margin: ``python benchmarks/access_control_gains.py --seeds 100`` measured, over
-    seeds 0-99 with this setting, a gap (as that fraction) of mean 0.023 and maximum
-    0.113; the margin 0.25 is more than twice the worst seed, and 0 of 100 seeds exceed
-    it (one-sided 95% bound on the failure rate: 3%). The seed is fixed, so the test is
-    deterministic. Exploration 0.1 (common practice) and step sizes 1 / n(s, a)^0.6
-    (Even-Dar & Mansour 2003, "Learning rates for Q-learning", JMLR 5).
+    Margin: ``python benchmarks/access_control_gains.py`` with this setting measured,
+    for the greedy policy read with a first-index argmax, a gap (as that fraction) of
+    mean 0.023 and maximum 0.113 over seeds 0-99, but 2 of seeds 100-299 above 0.25,
+    one near gain 0: untried states whose two values are still tied at 0 were read as
+    "reject", and a chain that reaches them with every server free stays there. Read as
+    the agent acts (ties uniform), as here and in the script now, that artifact is gone;
+    the failure rate of the margin for this reading is not yet measured over many seeds.
+    The seed is fixed, so the test is deterministic. Exploration 0.1 (common practice)
+    and step sizes 1 / n(s, a)^0.6 (Even-Dar & Mansour 2003, "Learning rates for
+    Q-learning", JMLR 5).
     """
     from tdkit.schedules import VisitCount
 
@@ -159,6 +170,6 @@ def test_differential_q_learning_reaches_near_the_exact_gain(mdp, solution):
     )
     tdkit.train(agent, env, steps=40_000, seed=0)
     everyone = policy_gain(mdp, np.full(mdp.n_states, ACCEPT))
-    greedy = policy_gain(mdp, agent.table.argmax(axis=1))
+    greedy = policy_gain(mdp, _greedy(agent.table))
     assert solution.gain - greedy <= 0.25 * (solution.gain - everyone)
     assert greedy > everyone

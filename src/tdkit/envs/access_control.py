@@ -147,7 +147,7 @@ def access_control_env(
     n_servers: int = 10,
     payments: tuple[float, ...] = (1.0, 2.0, 4.0, 8.0),
     p_free: float = 0.06,
-    max_steps: int | None = None,
+    max_episode_steps: int | None = None,
 ) -> FiniteMDPEnv:
     """The access-control task as a gymnasium environment that never terminates.
 
@@ -155,7 +155,7 @@ def access_control_env(
     ----------
     n_servers, payments, p_free
         As for :func:`access_control`.
-    max_steps : int, optional
+    max_episode_steps : int, optional
         A time limit (``truncated``); by default none, so the one episode runs
         until the training loop's step budget stops it.
 
@@ -175,4 +175,4 @@ def access_control_env(
     (True, False, False)
     """
     mdp = access_control(n_servers=n_servers, payments=payments, p_free=p_free)
-    return mdp.to_env(max_steps=max_steps)
+    return mdp.to_env(max_episode_steps=max_episode_steps)
