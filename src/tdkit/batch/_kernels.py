@@ -57,7 +57,7 @@ def _compile(module: types.ModuleType, names: tuple[str, ...]) -> dict[str, Call
         f = getattr(module, name)
         copy = types.FunctionType(f.__code__, namespace, f.__name__, f.__defaults__,
                                   f.__closure__)
-        compiled[name] = namespace[name] = numba.njit(cache=_CACHE)(copy)
+        compiled[name] = namespace[name] = numba.njit(cache=_CACHE, inline="always")(copy)
     return compiled
 
 

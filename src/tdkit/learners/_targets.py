@@ -126,19 +126,27 @@ def greedy_index(values: Sequence[float], allowed: Sequence[int], u: float) -> i
     r"""An allowed action of maximal value: tie :math:`\lfloor u k \rfloor` of the :math:`k` ties.
 
     Returns -1 when an allowed value is NaN (greedy is then undefined; the
-    caller raises).
+    caller raises). One pass finds the maximum, its first action and the
+    number of ties; a second pass runs only when there is a tie.
     """
-    top = -math.inf
-    for a in allowed:
+    best = allowed[0]
+    top = values[best]
+    k = 1
+    for j in range(1, len(allowed)):
+        a = allowed[j]
         v = values[a]
-        if v != v:
-            return -1
         if v > top:
             top = v
-    k = 0
-    for a in allowed:
-        if values[a] == top:
+            best = a
+            k = 1
+        elif v == top:
             k += 1
+        elif v != v:
+            return -1
+    if top != top:
+        return -1
+    if k == 1:
+        return best
     pick = int(u * k)
     for a in allowed:
         if values[a] == top:
