@@ -90,14 +90,14 @@ def _make_kernel(stamp: int) -> Callable[..., int]:
         state, action, fresh, ret, length,
         end_ids, end_returns, end_lengths, status,
     ):
-        """Advance every learner by ``u.shape[0]`` steps; return the number of ended episodes.
+        """Advance every learner by ``u.shape[1]`` steps; return the number of ended episodes.
 
         ``status[0]`` is set to the index of a learner whose values became NaN
         (its greedy choice is undefined); the chunk then stops.
         """
         if stamp < 0:  # never: references the stamp so that it enters the cache key
             return -1
-        n = u.shape[0]
+        n = u.shape[1]
         n_learners = state.shape[0]
         n_actions = q.shape[3]
         n_ended = 0
@@ -112,16 +112,16 @@ def _make_kernel(stamp: int) -> Callable[..., int]:
                 if code != _SARSA or is_fresh:
                     if softmax:
                         a = softmax_index(behaviour[k, s], allowed[s, :n_allowed[s]], parameter[i],
-                                          u[i, 2, k])
+                                          u[k, i, 2])
                     else:
                         a = epsilon_greedy_index(behaviour[k, s], allowed[s, :n_allowed[s]],
-                                                 parameter[i], u[i, 2, k], u[i, 3, k], u[i, 4, k])
+                                                 parameter[i], u[k, i, 2], u[k, i, 3], u[k, i, 4])
                     if a < 0:
                         status[0] = k
                         return n_ended
                 # -- environment
                 o = s * n_actions + a
-                j = sample_slot(cumulative[o], u[i, 0, k])
+                j = sample_slot(cumulative[o], u[k, i, 0])
                 s2 = next_states[o, j]
                 r = rewards[o, j]
                 terminated = terminal[s2]
@@ -134,16 +134,16 @@ def _make_kernel(stamp: int) -> Callable[..., int]:
                 a2 = -1
                 allowed2 = allowed[s2, :n_allowed[s2]]
                 if code == _DOUBLE_Q:
-                    table = 0 if u[i, 5, k] < 0.5 else 1
+                    table = 0 if u[k, i, 5] < 0.5 else 1
                     if not terminated:
                         boot = double_value(q[table, k, s2], q[1 - table, k, s2], allowed2,
-                                            u[i, 6, k])
+                                            u[k, i, 6])
                 elif code == _SARSA:
                     if softmax:
-                        a2 = softmax_index(q[0, k, s2], allowed2, parameter[i + 1], u[i, 5, k])
+                        a2 = softmax_index(q[0, k, s2], allowed2, parameter[i + 1], u[k, i, 5])
                     else:
                         a2 = epsilon_greedy_index(q[0, k, s2], allowed2, parameter[i + 1],
-                                                  u[i, 5, k], u[i, 6, k], u[i, 7, k])
+                                                  u[k, i, 5], u[k, i, 6], u[k, i, 7])
                     if a2 < 0:
                         status[0] = k
                         return n_ended
@@ -182,7 +182,7 @@ def _make_kernel(stamp: int) -> Callable[..., int]:
                     n_ended += 1
                     total = 0.0
                     steps_taken = 0
-                    s2 = sample_slot(start_cumulative, u[i, 1, k])
+                    s2 = sample_slot(start_cumulative, u[k, i, 1])
                 s = s2
             state[k] = s
             action[k] = a
@@ -243,7 +243,7 @@ def run_compiled(
     lengths: list[np.ndarray] = []
     no_alphas = np.zeros(0)
     for t0, block in uniform_blocks(rng, steps, learner, K):
-        n = block.shape[0]
+        n = block.shape[1]
         parameter = schedule_values(setup.parameter, t0, n + 1)
         alphas = schedule_values(setup.step_size, t0 + 1, n) if kind == "by_step" else no_alphas
         end_ids = np.empty(n * K, dtype=np.int64)

@@ -109,12 +109,12 @@ def run_numpy(setup: Setup, q: np.ndarray, rng: np.random.Generator, steps: int)
     ended_lengths: list[np.ndarray] = []
 
     for t0, block in uniform_blocks(rng, steps, learner, K):
-        n = block.shape[0]
+        n = block.shape[1]
         par = schedule_values(setup.parameter, t0, n + 1)  # behaviour at t, targets at t + 1
         alphas = schedule_values(setup.step_size, t0 + 1, n) if by_step else None
         for i in range(n):
             t = t0 + i
-            u = block[i]
+            u = block[:, i, :].T  # u[slot]: one number per learner
             # -- act
             here = row_base + state
             rows = behaviour_rows[here]

@@ -1,8 +1,10 @@
 """Validated inputs of a batch run, shared by the numpy and the compiled path (internal).
 
 Both paths consume the same random numbers in the same order: the start
-states (``K`` numbers), then blocks of shape ``(n, N_UNIFORM[learner], K)``
-(step, slot, learner) drawn by :func:`uniform_blocks`. The slots are
+states (``K`` numbers), then blocks of shape ``(K, n, N_UNIFORM[learner])``
+(learner, step, slot) drawn by :func:`uniform_blocks` (learner first, so the
+compiled kernel, which runs one learner's ``n`` steps at a time, reads them
+in memory order). The slots are
 
 ===  ==========================================================
 0    next state (successor slot)
@@ -222,8 +224,8 @@ def step_size_kind(schedule: Schedule) -> str:
 def uniform_blocks(
     rng: np.random.Generator, steps: int, learner: str, n_learners: int
 ) -> Iterator[tuple[int, np.ndarray]]:
-    """Yield ``(first step, block)`` with blocks of shape (n, N_UNIFORM[learner], K)."""
+    """Yield ``(first step, block)`` with blocks of shape (K, n, N_UNIFORM[learner])."""
     width = N_UNIFORM[learner]
     draw = max(1, _CHUNK_NUMBERS // (width * n_learners))
     for t in range(0, steps, draw):
-        yield t, rng.random((min(draw, steps - t), width, n_learners))
+        yield t, rng.random((n_learners, min(draw, steps - t), width))

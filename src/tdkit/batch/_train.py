@@ -186,12 +186,15 @@ def train_batch(
 
     >>> from tdkit.batch import train_batch
     >>> from tdkit.envs.problems import dyna_maze
-    >>> res = train_batch(dyna_maze(), "q_learning", n_learners=8, steps=3000, seed=1,
+    >>> res = train_batch(dyna_maze(), "q_learning", n_learners=8, steps=10_000, seed=1,
     ...                   step_size=0.5, exploration=0.1)
     >>> res.tables.shape
     (8, 54, 4)
     >>> bool(all(len(r) > 0 for r in res.episode_returns))   # every learner reached the goal
     True
+
+    (The first episode, greedy on an all-zero table, is a random walk: over
+    512 learners its length had median 598 and maximum 4085 steps.)
     """
     owner = "train_batch"
     mdp = check_mdp(mdp)
