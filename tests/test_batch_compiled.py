@@ -313,3 +313,12 @@ def test_kernel_runs_uncompiled_and_agrees():
                           text=True, check=False)
     assert done.returncode == 0, done.stderr[-3000:]
     assert "uncompiled kernel ok" in done.stdout
+
+
+def test_import_tdkit_does_not_import_numba():
+    # numba is an optional extra, imported when the compiled path first runs.
+    code = "import sys, tdkit, tdkit.batch; print('numba' in sys.modules)"
+    path = os.pathsep.join(p for p in (str(SRC), os.environ.get("PYTHONPATH", "")) if p)
+    done = subprocess.run([sys.executable, "-c", code], env={**os.environ, "PYTHONPATH": path},
+                          capture_output=True, text=True, check=True)
+    assert done.stdout.strip() == "False"

@@ -58,9 +58,10 @@ def test_row_versions_and_array_versions_agree_exactly(data, eps, tau):
         "argmax": T.greedy_index_rows(rows, mask, u[0]),
         "eps_expect": T.expected_epsilon_greedy_rows(rows, mask, eps),
         "soft_expect": T.expected_softmax_rows(rows, mask, tau),
-        "eps_choice": T.epsilon_greedy_index_rows(rows, mask, eps, u[0], u[1], u[2]),
+        "eps_choice": T.epsilon_greedy_index_rows(rows, mask, eps, u[0]),
         "soft_choice": T.softmax_index_rows(rows, mask, tau, u[1]),
         "double": T.double_value_rows(rows, rows[::-1] * 2.0 + 1.0, mask, u[2]),
+        "coin": np.stack(T.double_coin_rows(u[1]), axis=1),
     }
     for i in range(k):
         values = rows[i].tolist()  # the scalar learners' hot path reads lists
@@ -71,12 +72,13 @@ def test_row_versions_and_array_versions_agree_exactly(data, eps, tau):
             "argmax": T.greedy_index(values, allowed, u[0, i]),
             "eps_expect": T.expected_epsilon_greedy(values, allowed, eps),
             "soft_expect": T.expected_softmax(values, allowed, tau),
-            "eps_choice": T.epsilon_greedy_index(values, allowed, eps, u[0, i], u[1, i], u[2, i]),
+            "eps_choice": T.epsilon_greedy_index(values, allowed, eps, u[0, i]),
             "soft_choice": T.softmax_index(values, allowed, tau, u[1, i]),
             "double": T.double_value(values, other, allowed, u[2, i]),
         }
         for name, value in want.items():
             assert got[name][i] == value, (name, i, rows[i], None if mask is None else mask[i])
+        assert tuple(got["coin"][i]) == T.double_coin(u[1, i])
 
 
 # --------------------------------------------------------------------------- 2. definitions
@@ -92,6 +94,26 @@ def test_epsilon_greedy_expectation_is_the_policy_average(data, eps):
         got = T.expected_epsilon_greedy(rows[i].tolist(), allowed_of(mask, i, rows.shape[1]), eps)
         # Both sides are sums of <= 7 terms of size <= 5: rounding error < 1e-13.
         assert got == pytest.approx(want, abs=1e-12)
+
+
+@given(rows_and_masks(), epsilons)
+def test_one_number_epsilon_greedy_has_the_epsilon_greedy_probabilities(data, eps):
+    # pi(a) = eps / n + (1 - eps) [a greedy] / |greedy| (Sutton & Barto 2018, Section 2.2;
+    # EpsilonGreedy.probabilities). The choice is a step function of u: each action owns
+    # at most two intervals of [0, 1) (one while exploring, one as a greedy tie) whose
+    # lengths are its probability; N grid midpoints u_j = (j + 1/2) / N count an
+    # interval's length within 1 / N per end, so |share - pi(a)| <= 4 / N.
+    rows, mask, _ = data
+    n_grid = 4000
+    grid = (np.arange(n_grid) + 0.5) / n_grid
+    a_count = rows.shape[1]
+    for i in range(rows.shape[0]):
+        allowed = allowed_of(mask, i, a_count)
+        values = rows[i].tolist()
+        picks = np.array([T.epsilon_greedy_index(values, allowed, eps, u) for u in grid])
+        share = np.bincount(picks, minlength=a_count) / n_grid
+        probs = EpsilonGreedy(eps).probabilities(rows[i], None if mask is None else mask[i])
+        np.testing.assert_allclose(share, probs, rtol=0, atol=4 / n_grid + 1e-12)
 
 
 @given(rows_and_masks(), temperatures)
@@ -143,4 +165,8 @@ def test_mask_restricts_every_quantity_to_allowed_actions():
     assert T.greedy_index(values, allowed, 0.99) == 3
     assert T.expected_epsilon_greedy(values, allowed, 0.5) == 0.5 * 2.0 + 0.5 * 3.0
     assert T.uniform_index(allowed, 0.49) == 0 and T.uniform_index(allowed, 0.5) == 3
-    assert T.epsilon_greedy_index(values, allowed, 1.0, 0.0, 0.7, 0.0) == 3
+    assert T.epsilon_greedy_index(values, allowed, 1.0, 0.7) == 3      # explore: u / eps
+    assert T.epsilon_greedy_index(values, allowed, 0.5, 0.2) == 0      # 0.2 / 0.5 = 0.4 -> 0
+    assert T.epsilon_greedy_index([1.0, 2.0, 2.0], range(3), 0.5, 0.7) == 1  # (0.7-.5)/.5 = .4
+    assert T.epsilon_greedy_index([1.0, 2.0, 2.0], range(3), 0.5, 0.8) == 2  # .6 -> tie 1
+    assert T.double_coin(0.25) == (0, 0.5) and T.double_coin(0.75) == (1, 0.5)

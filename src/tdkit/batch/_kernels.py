@@ -63,7 +63,8 @@ def _compile(module: types.ModuleType, names: tuple[str, ...]) -> dict[str, Call
 
 _T = _compile(_targets, (
     "greedy_max", "greedy_index", "uniform_index", "epsilon_greedy_index", "softmax_index",
-    "expected_epsilon_greedy", "expected_softmax", "double_value", "sampled_value",
+    "expected_epsilon_greedy", "expected_softmax", "double_coin", "double_value",
+    "sampled_value",
 ))
 _S = _compile(_successors, ("sample_slot",))
 greedy_max = _T["greedy_max"]
@@ -71,6 +72,7 @@ epsilon_greedy_index = _T["epsilon_greedy_index"]
 softmax_index = _T["softmax_index"]
 expected_epsilon_greedy = _T["expected_epsilon_greedy"]
 expected_softmax = _T["expected_softmax"]
+double_coin = _T["double_coin"]
 double_value = _T["double_value"]
 sampled_value = _T["sampled_value"]
 sample_slot = _S["sample_slot"]
@@ -115,7 +117,7 @@ def _make_kernel(stamp: int) -> Callable[..., int]:
                                           u[k, i, 2])
                     else:
                         a = epsilon_greedy_index(behaviour[k, s], allowed[s, :n_allowed[s]],
-                                                 parameter[i], u[k, i, 2], u[k, i, 3], u[k, i, 4])
+                                                 parameter[i], u[k, i, 2])
                     if a < 0:
                         status[0] = k
                         return n_ended
@@ -134,16 +136,16 @@ def _make_kernel(stamp: int) -> Callable[..., int]:
                 a2 = -1
                 allowed2 = allowed[s2, :n_allowed[s2]]
                 if code == _DOUBLE_Q:
-                    table = 0 if u[k, i, 5] < 0.5 else 1
+                    table, u_tie = double_coin(u[k, i, 3])
                     if not terminated:
                         boot = double_value(q[table, k, s2], q[1 - table, k, s2], allowed2,
-                                            u[k, i, 6])
+                                            u_tie)
                 elif code == _SARSA:
                     if softmax:
-                        a2 = softmax_index(q[0, k, s2], allowed2, parameter[i + 1], u[k, i, 5])
+                        a2 = softmax_index(q[0, k, s2], allowed2, parameter[i + 1], u[k, i, 3])
                     else:
                         a2 = epsilon_greedy_index(q[0, k, s2], allowed2, parameter[i + 1],
-                                                  u[k, i, 5], u[k, i, 6], u[k, i, 7])
+                                                  u[k, i, 3])
                     if a2 < 0:
                         status[0] = k
                         return n_ended

@@ -90,11 +90,7 @@ def run_numpy(setup: Setup, q: np.ndarray, rng: np.random.Generator, steps: int)
     row_base = learners * S  # row of (learner, state 0) in a table
     table_size = K * S * A
 
-    if softmax:
-        def choose(rows, m, par, u0, u1, u2):
-            return _targets.softmax_index_rows(rows, m, par, u0)
-    else:
-        choose = _targets.epsilon_greedy_index_rows
+    choose = _targets.softmax_index_rows if softmax else _targets.epsilon_greedy_index_rows
 
     def start_states(u: np.ndarray) -> np.ndarray:
         return sample_slots(start_cum, u)
@@ -119,7 +115,7 @@ def run_numpy(setup: Setup, q: np.ndarray, rng: np.random.Generator, steps: int)
             here = row_base + state
             rows = behaviour_rows[here]
             m = None if mask is None else mask[state]
-            chosen = choose(rows, m, par[i], u[2], u[3], u[4])
+            chosen = choose(rows, m, par[i], u[2])
             if (chosen < 0).any():
                 raise _nan_error(rows, chosen)
             action = np.where(fresh, chosen, action) if sarsa else chosen
@@ -137,15 +133,15 @@ def run_numpy(setup: Setup, q: np.ndarray, rng: np.random.Generator, steps: int)
             entry = here * A + action
             m2 = None if mask is None else mask[s2]
             if double:
-                upd = np.where(u[5] < 0.5, 0, 1)
+                upd, u_tie = _targets.double_coin_rows(u[3])
                 select = q_rows[upd * (K * S) + row_base + s2]
                 evaluate = q_rows[(1 - upd) * (K * S) + row_base + s2]
-                boot = _targets.double_value_rows(select, evaluate, m2, u[6])
+                boot = _targets.double_value_rows(select, evaluate, m2, u_tie)
                 entry = upd * table_size + entry
             else:
                 next_rows = q_rows[row_base + s2]
                 if sarsa:
-                    next_action = choose(next_rows, m2, par[i + 1], u[5], u[6], u[7])
+                    next_action = choose(next_rows, m2, par[i + 1], u[3])
                     if (next_action < 0).any():
                         raise _nan_error(next_rows, next_action)
                     boot = next_rows[learners, next_action]  # sampled_value, row by row

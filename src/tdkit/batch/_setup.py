@@ -9,9 +9,9 @@ in memory order). The slots are
 ===  ==========================================================
 0    next state (successor slot)
 1    start state of the next episode (used when one ends)
-2-4  behaviour: explore?, uniform action, tie (soft-max: slot 2)
-5-7  SARSA's next action, as 2-4
-5-6  Double Q-learning: the coin, the tie of the argmax
+2    behaviour (one number per ε-greedy or soft-max choice)
+3    SARSA: its next action; Double Q-learning: the coin and the
+     tie of the argmax (``_targets.double_coin``)
 ===  ==========================================================
 """
 
@@ -46,7 +46,7 @@ __all__ = [
 LEARNERS = ("q_learning", "sarsa", "expected_sarsa", "double_q")
 """Names of the learners :func:`train_batch` runs (their index is the kernels' learner code)."""
 
-N_UNIFORM = {"q_learning": 5, "sarsa": 8, "expected_sarsa": 5, "double_q": 7}
+N_UNIFORM = {"q_learning": 3, "sarsa": 4, "expected_sarsa": 3, "double_q": 4}
 """Uniform numbers per learner and step."""
 
 _CHUNK_NUMBERS = 1 << 18

@@ -10,6 +10,7 @@ depends on:
 ``expected_epsilon_greedy`` :math:`\sum_a \pi_\varepsilon(a)\, q(a)` (Expected SARSA)
 ``expected_softmax``        :math:`\sum_a \pi_\tau(a)\, q(a)` (Expected SARSA, soft-max)
 ``double_value``            :math:`q^B(\arg\max_a q^A(a))` (Double Q-learning)
+``double_coin``             which of its two tables Double Q-learning updates
 ``sampled_value``           :math:`q(A_{t+1})` (SARSA)
 ``greedy_index``            an argmax, ties shared uniformly
 ``epsilon_greedy_index``    an ε-greedy draw
@@ -39,8 +40,8 @@ Random choices take their uniform numbers ``u`` in [0, 1) from the caller
 the same numbers make the same choices. Ties: the :math:`k` tied greedy
 actions are ranked in index order and ``u`` picks tie
 :math:`\lfloor u k \rfloor`, each with probability :math:`1/k` (the rule of
-:func:`tdkit._greedy.greedy_action`). An ε-greedy choice takes three numbers
-(explore?, which uniform action, which tie).
+:func:`tdkit._greedy.greedy_action`). An ε-greedy choice takes one number
+(see :func:`epsilon_greedy_index`).
 
 Closed form of the ε-greedy expectation. With :math:`n = |\mathcal A|` and
 the greedy set :math:`G = \arg\max_{a \in \mathcal A} q(a)`, the policy is
@@ -88,6 +89,8 @@ from collections.abc import Sequence
 import numpy as np
 
 __all__ = [
+    "double_coin",
+    "double_coin_rows",
     "double_value",
     "double_value_rows",
     "epsilon_greedy_index",
@@ -148,6 +151,8 @@ def greedy_index(values: Sequence[float], allowed: Sequence[int], u: float) -> i
     if k == 1:
         return best
     pick = int(u * k)
+    if pick >= k:  # a rescaled u may round up to 1
+        pick = k - 1
     for a in allowed:
         if values[a] == top:
             if pick == 0:
@@ -166,13 +171,18 @@ def uniform_index(allowed: Sequence[int], u: float) -> int:
 
 
 def epsilon_greedy_index(
-    values: Sequence[float], allowed: Sequence[int], epsilon: float,
-    u_explore: float, u_action: float, u_tie: float,
+    values: Sequence[float], allowed: Sequence[int], epsilon: float, u: float
 ) -> int:
-    r"""ε-greedy: a uniform allowed action when ``u_explore < epsilon``, else greedy."""
-    if epsilon > 0.0 and u_explore < epsilon:
-        return uniform_index(allowed, u_action)
-    return greedy_index(values, allowed, u_tie)
+    r"""ε-greedy from one uniform number: explore when :math:`u < \varepsilon`.
+
+    Exploring, :math:`u / \varepsilon` picks the uniform allowed action;
+    otherwise :math:`(u - \varepsilon) / (1 - \varepsilon)` picks among the
+    greedy ties. Both are uniform on [0, 1) given the branch, so one number
+    does the work of three.
+    """
+    if u < epsilon:
+        return uniform_index(allowed, u / epsilon)
+    return greedy_index(values, allowed, (u - epsilon) / (1.0 - epsilon))
 
 
 def softmax_index(
@@ -249,6 +259,17 @@ def double_value(
     return evaluate[best]
 
 
+def double_coin(u: float) -> tuple[int, float]:
+    r"""Double Q-learning's fair coin and the tie number of its argmax, from one uniform.
+
+    Returns ``(table, u_tie)``: the table to update (0 when :math:`u < 1/2`)
+    and :math:`2u - \text{table}`, uniform on [0, 1) given the coin (exact in
+    floating point).
+    """
+    table = 0 if u < 0.5 else 1
+    return table, 2.0 * u - table
+
+
 def sampled_value(values: Sequence[float], action: int) -> float:
     r""":math:`q(A_{t+1})` for the next action actually drawn (SARSA)."""
     return values[action]
@@ -278,7 +299,7 @@ def greedy_index_rows(rows: np.ndarray, mask: np.ndarray | None, u: np.ndarray) 
     if mask is not None:
         ties &= mask  # an all -inf row: only allowed actions tie
     rank = ties.cumsum(axis=1)  # rank[i, j]: ties among rows[i, :j + 1]
-    pick = (u * rank[:, -1]).astype(np.intp)
+    pick = np.minimum((u * rank[:, -1]).astype(np.intp), rank[:, -1] - 1)
     best = (rank > pick[:, None]).argmax(axis=1)
     if bad.any():
         best[bad] = -1
@@ -294,15 +315,18 @@ def _uniform_index_rows(mask: np.ndarray | None, n_actions: int, u: np.ndarray) 
 
 
 def epsilon_greedy_index_rows(
-    rows: np.ndarray, mask: np.ndarray | None, epsilon: float,
-    u_explore: np.ndarray, u_action: np.ndarray, u_tie: np.ndarray,
+    rows: np.ndarray, mask: np.ndarray | None, epsilon: float, u: np.ndarray
 ) -> np.ndarray:
     """:func:`epsilon_greedy_index` of every row."""
+    explore = u < epsilon
+    with np.errstate(divide="ignore", invalid="ignore"):
+        u_tie = np.where(explore, 0.0, (u - epsilon) / (1.0 - epsilon))
+        u_action = np.where(explore, u / epsilon, 0.0) if epsilon > 0.0 else u
     greedy = greedy_index_rows(rows, mask, u_tie)
-    if epsilon <= 0.0:
+    if not explore.any():
         return greedy
     uniform = _uniform_index_rows(mask, rows.shape[1], u_action)
-    return np.where(u_explore < epsilon, uniform, greedy)
+    return np.where(explore, uniform, greedy)
 
 
 def _softmax_weights(
@@ -368,6 +392,12 @@ def expected_softmax_rows(
         total += w[:, j]
         weighted += w[:, j] * values[:, j]
     return weighted / total
+
+
+def double_coin_rows(u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`double_coin` of every entry of ``u``."""
+    table = np.where(u < 0.5, 0, 1)
+    return table, 2.0 * u - table
 
 
 def double_value_rows(
