@@ -119,12 +119,16 @@ def test_compiled_equals_numpy_for_the_same_draws(learner, exploration, step_siz
     assert (lengths < 15).any() and (lengths == 15).any()
 
 
-def test_compiled_equals_numpy_across_chunks_of_draws():
-    # Many learners and steps: several blocks of uniforms (2**18 numbers each), so
-    # state, action and episode records carry over between kernel calls.
+def test_compiled_equals_numpy_across_chunks_of_draws(monkeypatch):
+    # Small blocks of uniforms (997 numbers: 6 steps of 40 SARSA learners, and a last
+    # partial block), so state, action, episode records and the step count of the
+    # schedules carry over between many kernel calls.
+    from tdkit.batch import _setup
+
+    monkeypatch.setattr(_setup, "_CHUNK_NUMBERS", 997)
     mdp = stochastic_model()
-    kwargs = {"n_learners": 40, "steps": 4000, "exploration": 0.2, "max_episode_steps": 30,
-              "seed": 3}
+    kwargs = {"n_learners": 40, "steps": 1003, "exploration": Linear(0.5, 0.05, 500),
+              "step_size": Linear(1.0, 0.1, 700), "max_episode_steps": 30, "seed": 3}
     assert_same_run(train_batch(mdp, "sarsa", backend="numpy", **kwargs),
                     train_batch(mdp, "sarsa", backend="compiled", **kwargs))
 
