@@ -7,8 +7,8 @@ current state, episode return and episode step count. Two paths run it and
 give the same result for the same seed:
 
 * **compiled** (when numba is installed: ``pip install tdkit[fast]``): one
-  kernel steps every learner in machine code, tens of millions of
-  learner-steps per second from K = 1 on;
+  kernel steps every learner in machine code, about ten million
+  learner-steps per second per core from K = 1 on (``docs/performance.md``);
 * **numpy**: one time step of all K learners is a handful of numpy
   operations over a leading axis of length K, with no Python loop over the
   learners.

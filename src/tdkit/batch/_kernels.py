@@ -87,7 +87,7 @@ def _make_kernel(stamp: int) -> Callable[..., int]:
     def _run_chunk(
         code, softmax, alpha_kind, alpha_constant, power, gamma, max_steps,
         q, behaviour, visits, total_visits,
-        cumulative, next_states, rewards, terminal, start_cumulative, allowed, n_allowed,
+        cumulative, next_states, rewards, terminal, start_cumulative, masked, allowed, n_allowed,
         u, parameter, alphas,
         state, action, fresh, ret, length,
         end_ids, end_returns, end_lengths, status,
@@ -102,6 +102,7 @@ def _make_kernel(stamp: int) -> Callable[..., int]:
         n = u.shape[1]
         n_learners = state.shape[0]
         n_actions = q.shape[3]
+        every = allowed[0, :n_actions]  # without masks: every action, one row kept hot
         n_ended = 0
         for k in range(n_learners):
             s = state[k]
@@ -112,12 +113,11 @@ def _make_kernel(stamp: int) -> Callable[..., int]:
             for i in range(n):
                 # -- act
                 if code != _SARSA or is_fresh:
+                    here = allowed[s, :n_allowed[s]] if masked else every
                     if softmax:
-                        a = softmax_index(behaviour[k, s], allowed[s, :n_allowed[s]], parameter[i],
-                                          u[k, i, 2])
+                        a = softmax_index(behaviour[k, s], here, parameter[i], u[k, i, 2])
                     else:
-                        a = epsilon_greedy_index(behaviour[k, s], allowed[s, :n_allowed[s]],
-                                                 parameter[i], u[k, i, 2])
+                        a = epsilon_greedy_index(behaviour[k, s], here, parameter[i], u[k, i, 2])
                     if a < 0:
                         status[0] = k
                         return n_ended
@@ -134,7 +134,7 @@ def _make_kernel(stamp: int) -> Callable[..., int]:
                 table = 0
                 boot = 0.0
                 a2 = -1
-                allowed2 = allowed[s2, :n_allowed[s2]]
+                allowed2 = allowed[s2, :n_allowed[s2]] if masked else every
                 if code == _DOUBLE_Q:
                     table, u_tie = double_coin(u[k, i, 3])
                     if not terminated:
@@ -254,8 +254,8 @@ def run_compiled(
         n_ended = _run_chunk(
             code, setup.softmax, alpha_kind, alpha_constant, power, setup.gamma, max_steps,
             q, behaviour, visits, total_visits,
-            cumulative, next_states, rewards, terminal, start_cumulative, allowed, n_allowed,
-            block, parameter, alphas,
+            cumulative, next_states, rewards, terminal, start_cumulative, setup.mask is not None,
+            allowed, n_allowed, block, parameter, alphas,
             state, action, fresh, ret, length,
             end_ids, end_returns, end_lengths, status,
         )

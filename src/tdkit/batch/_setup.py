@@ -49,8 +49,8 @@ LEARNERS = ("q_learning", "sarsa", "expected_sarsa", "double_q")
 N_UNIFORM = {"q_learning": 3, "sarsa": 4, "expected_sarsa": 3, "double_q": 4}
 """Uniform numbers per learner and step."""
 
-_CHUNK_NUMBERS = 1 << 20
-"""Uniform numbers drawn per call to the generator (8 MB, drawn ahead for many steps: the
+_CHUNK_NUMBERS = 1 << 21
+"""Uniform numbers drawn per call to the generator (16 MB, drawn ahead for many steps: the
 kernel runs each learner through a whole block, so large blocks keep its table in cache)."""
 
 _SCALAR_NAMES = {
