@@ -1,4 +1,7 @@
-"""Small validators shared by every constructor; each names the parameter."""
+"""Argument validators (`require_*`) shared by every constructor; each names the parameter.
+
+The `check_*` prefix is reserved for verifier checks (`tdkit.verify`).
+"""
 
 from __future__ import annotations
 
@@ -7,10 +10,10 @@ import numbers
 
 from ._errors import InvalidParameterError
 
-__all__ = ["check_in_range", "check_positive_int", "check_real"]
+__all__ = ["require_in_range", "require_positive_int", "require_real"]
 
 
-def check_real(owner: str, name: str, value: object) -> float:
+def require_real(owner: str, name: str, value: object) -> float:
     """Return ``value`` as a finite float or raise naming ``owner.name``."""
     if isinstance(value, bool) or not isinstance(value, numbers.Real):
         raise InvalidParameterError(
@@ -23,7 +26,7 @@ def check_real(owner: str, name: str, value: object) -> float:
     return value
 
 
-def check_in_range(
+def require_in_range(
     owner: str,
     name: str,
     value: object,
@@ -38,7 +41,7 @@ def check_in_range(
 
     The message has the shape "Owner: name must be in (0, 1]; got 1.5. hint".
     """
-    x = check_real(owner, name, value)
+    x = require_real(owner, name, value)
     below = x <= low if low_open else x < low
     above = x >= high if high_open else x > high
     if below or above:
@@ -49,7 +52,7 @@ def check_in_range(
     return x
 
 
-def check_positive_int(owner: str, name: str, value: object, *, minimum: int = 1) -> int:
+def require_positive_int(owner: str, name: str, value: object, *, minimum: int = 1) -> int:
     """Return ``value`` as int if it is an integer >= ``minimum``, else raise."""
     if isinstance(value, bool) or not isinstance(value, numbers.Integral) or value < minimum:
         raise InvalidParameterError(

@@ -32,7 +32,7 @@ import numpy as np
 from ._errors import InvalidParameterError
 from ._greedy import check_mask, greedy_action
 from ._seeding import SeedLike, as_generator
-from ._validation import check_in_range, check_positive_int
+from ._validation import require_in_range, require_positive_int
 from .exploration import Exploration, as_exploration
 from .schedules import Constant, Schedule, as_schedule
 from .tables import ActionValueTable, InitialValue, read_only
@@ -120,9 +120,9 @@ class TabularAgent:
         action_encoder: Any = None,
     ) -> None:
         name = type(self).__name__
-        self.n_states = check_positive_int(name, "n_states", n_states)
-        self.n_actions = check_positive_int(name, "n_actions", n_actions)
-        self.gamma = check_in_range(name, "gamma", gamma, 0.0, 1.0)
+        self.n_states = require_positive_int(name, "n_states", n_states)
+        self.n_actions = require_positive_int(name, "n_actions", n_actions)
+        self.gamma = require_in_range(name, "gamma", gamma, 0.0, 1.0)
         self.step_size = step_size
         self.exploration = exploration
         self.initial_value = initial_value

@@ -56,7 +56,7 @@ import numpy as np
 from ._errors import InvalidParameterError
 from ._greedy import greedy_rows
 from ._seeding import SeedLike, as_generator
-from ._validation import check_in_range, check_positive_int
+from ._validation import require_in_range, require_positive_int
 from .dp import greedy_policy
 from .envs.finite import FiniteMDP
 from .exploration import EpsilonGreedy, Exploration, as_exploration
@@ -361,8 +361,8 @@ def train_batch(
     owner = "train_batch"
     mdp = _check_mdp(mdp)
     learner = _check_learner(learner)
-    n_learners = check_positive_int(owner, "n_learners", n_learners)
-    steps = check_positive_int(owner, "steps", steps)
+    n_learners = require_positive_int(owner, "n_learners", n_learners)
+    steps = require_positive_int(owner, "steps", steps)
     alpha = _StepSizes(as_schedule(
         step_size, owner=owner, name="step_size", low=0.0, high=1.0, low_open=True,
         hint="Use a float or a schedule from tdkit.schedules.",
@@ -370,8 +370,8 @@ def train_batch(
     explore = _check_epsilon(exploration)
     rng = as_generator(seed, owner=owner)
     if max_episode_steps is not None:
-        max_episode_steps = check_positive_int(owner, "max_episode_steps", max_episode_steps)
-    gamma = mdp.gamma if gamma is None else check_in_range(owner, "gamma", gamma, 0.0, 1.0)
+        max_episode_steps = require_positive_int(owner, "max_episode_steps", max_episode_steps)
+    gamma = mdp.gamma if gamma is None else require_in_range(owner, "gamma", gamma, 0.0, 1.0)
     n_tables = 2 if learner == "double_q" else 1
     shape = (n_learners, mdp.n_states, mdp.n_actions)
     q = np.stack([_initial_tables(initial_value, shape, rng) for _ in range(n_tables)])

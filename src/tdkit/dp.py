@@ -35,7 +35,7 @@ from typing import Any, NamedTuple
 import numpy as np
 
 from ._errors import InvalidParameterError
-from ._validation import check_in_range, check_positive_int
+from ._validation import require_in_range, require_positive_int
 from .envs.finite import FiniteMDP
 
 __all__ = [
@@ -318,7 +318,7 @@ def greedy_policy(q: Any, *, atol: float = 1e-9) -> GreedyPolicy:
             f"{owner}: q must have shape (S, A) with A >= 1; got shape {array.shape}."
         )
     array = _check_values(owner, "q", array, array.shape)
-    atol = check_in_range(owner, "atol", atol, 0.0, math.inf)
+    atol = require_in_range(owner, "atol", atol, 0.0, math.inf)
     maximisers = array >= array.max(axis=1, keepdims=True) - atol
     return GreedyPolicy(np.argmax(maximisers, axis=1), maximisers)
 
@@ -565,8 +565,8 @@ def evaluate_policy(
             f"{owner}: method must be 'auto', 'direct', 'sparse' or 'iterative'; "
             f"got {method!r}."
         )
-    tol = check_in_range(owner, "tol", tol, 0.0, math.inf, low_open=True)
-    max_iterations = check_positive_int(owner, "max_iterations", max_iterations)
+    tol = require_in_range(owner, "tol", tol, 0.0, math.inf, low_open=True)
+    max_iterations = require_positive_int(owner, "max_iterations", max_iterations)
     chain = _induced_chain(mdp, pi)
     if mdp.gamma == 1.0:
         _proper_or_raise(owner, chain)
@@ -666,7 +666,7 @@ def value_iteration(
     """
     owner = "value_iteration"
     mdp = _check_mdp(owner, mdp)
-    tol = check_in_range(owner, "tol", tol, 0.0, math.inf, low_open=True)
+    tol = require_in_range(owner, "tol", tol, 0.0, math.inf, low_open=True)
     gamma = mdp.gamma
     v = (
         np.zeros(mdp.n_states)
@@ -683,7 +683,7 @@ def value_iteration(
             max_iterations = math.ceil(max(needed, 0.0)) + 2 * _STALL_SWEEPS
         else:
             max_iterations = 1_000_000
-    max_iterations = check_positive_int(owner, "max_iterations", max_iterations)
+    max_iterations = require_positive_int(owner, "max_iterations", max_iterations)
 
     def step(values: np.ndarray) -> np.ndarray:
         return _action_values(mdp, values).max(axis=1)
@@ -757,8 +757,8 @@ def policy_iteration(
     """
     owner = "policy_iteration"
     mdp = _check_mdp(owner, mdp)
-    max_iterations = check_positive_int(owner, "max_iterations", max_iterations)
-    atol = check_in_range(owner, "atol", atol, 0.0, math.inf)
+    max_iterations = require_positive_int(owner, "max_iterations", max_iterations)
+    atol = require_in_range(owner, "atol", atol, 0.0, math.inf)
     if initial_policy is None:
         policy = _proper_start(mdp) if mdp.gamma == 1.0 else np.argmax(mdp.R, axis=1)
     else:

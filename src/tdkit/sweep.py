@@ -38,7 +38,7 @@ import numpy as np
 
 from ._errors import InvalidParameterError, TdkitError
 from ._runs import check_callable, check_executor, check_picklable, check_seeds, train_run
-from ._validation import check_in_range, check_positive_int
+from ._validation import require_in_range, require_positive_int
 from .history import History
 from .stats import ConfidenceInterval, bootstrap_ci
 from .verify.factories import AgentFactory
@@ -479,9 +479,9 @@ class SweepResult:
         """
         owner = "SweepResult.summary"
         self._check_metric(owner, metric)
-        confidence = check_in_range(owner, "confidence", confidence, 0.0, 1.0,
+        confidence = require_in_range(owner, "confidence", confidence, 0.0, 1.0,
                                     low_open=True, high_open=True)
-        n_resamples = check_positive_int(owner, "n_resamples", n_resamples)
+        n_resamples = require_positive_int(owner, "n_resamples", n_resamples)
         table = self.scores(metric)
         rows = []
         for index, (setting, scores) in enumerate(zip(self.settings, table, strict=True)):
@@ -683,13 +683,13 @@ def run_sweep(
             "got neither."
         )
     if episodes is not None:
-        episodes = check_positive_int(owner, "episodes", episodes)
+        episodes = require_positive_int(owner, "episodes", episodes)
     if steps is not None:
-        steps = check_positive_int(owner, "steps", steps)
+        steps = require_positive_int(owner, "steps", steps)
     if max_episode_steps is not None:
-        max_episode_steps = check_positive_int(owner, "max_episode_steps", max_episode_steps)
-    eval_episodes = check_positive_int(owner, "eval_episodes", eval_episodes, minimum=0)
-    final_episodes = check_positive_int(owner, "final_episodes", final_episodes)
+        max_episode_steps = require_positive_int(owner, "max_episode_steps", max_episode_steps)
+    eval_episodes = require_positive_int(owner, "eval_episodes", eval_episodes, minimum=0)
+    final_episodes = require_positive_int(owner, "final_episodes", final_episodes)
     tasks = [
         _Task(index, setting, seed)
         for index, setting in enumerate(setting_list)
@@ -704,7 +704,7 @@ def run_sweep(
             )
         workers = 0
     else:
-        workers = _default_workers() if max_workers is None else check_positive_int(
+        workers = _default_workers() if max_workers is None else require_positive_int(
             owner, "max_workers", max_workers
         )
         workers = min(workers, len(tasks))

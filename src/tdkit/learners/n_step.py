@@ -35,7 +35,7 @@ import numpy as np
 
 from .._errors import InvalidParameterError
 from .._greedy import masked_max
-from .._validation import check_positive_int
+from .._validation import require_positive_int
 from ..agent import TabularAgent, Transition
 from ._commit import CommitsNextAction
 
@@ -53,7 +53,7 @@ class _NStepLearner(TabularAgent):
     _extra_params: ClassVar[tuple[str, ...]] = ("n",)
 
     def __init__(self, n_states: int, n_actions: int, *, n: int = 4, **kwargs: Any) -> None:
-        self.n = check_positive_int(type(self).__name__, "n", n)
+        self.n = require_positive_int(type(self).__name__, "n", n)
         super().__init__(n_states, n_actions, **kwargs)
         self._buffer: deque[_Step] = deque()
         self._mask_now: np.ndarray | None = None  # mask of S_t (next_mask of the previous step)

@@ -30,7 +30,7 @@ from typing import Any, ClassVar
 import numpy as np
 
 from .._greedy import masked_max, uniform_action
-from .._validation import check_in_range, check_positive_int
+from .._validation import require_in_range, require_positive_int
 from ..agent import Transition
 from ._models import make_model
 from .one_step import QLearning
@@ -53,7 +53,9 @@ class _PlanningLearner(QLearning):
         **kwargs: Any,
     ) -> None:
         name = type(self).__name__
-        self.planning_steps = check_positive_int(name, "planning_steps", planning_steps, minimum=0)
+        self.planning_steps = require_positive_int(
+            name, "planning_steps", planning_steps, minimum=0
+        )
         self._model = make_model(name, model)
         self.model = model
         super().__init__(n_states, n_actions, **kwargs)
@@ -198,7 +200,7 @@ class DynaQPlus(DynaQ):
         model: str = "last",
         **kwargs: Any,
     ) -> None:
-        self.kappa = check_in_range(type(self).__name__, "kappa", kappa, 0.0, math.inf)
+        self.kappa = require_in_range(type(self).__name__, "kappa", kappa, 0.0, math.inf)
         super().__init__(
             n_states, n_actions, planning_steps=planning_steps, model=model, **kwargs
         )
@@ -297,7 +299,7 @@ class PrioritizedSweeping(_PlanningLearner):
         model: str = "last",
         **kwargs: Any,
     ) -> None:
-        self.threshold = check_in_range(
+        self.threshold = require_in_range(
             type(self).__name__, "threshold", threshold, 0.0, math.inf
         )
         super().__init__(

@@ -29,7 +29,7 @@ import numpy as np
 
 from .._errors import InvalidParameterError
 from .._greedy import check_mask
-from .._validation import check_in_range, check_positive_int
+from .._validation import require_in_range, require_positive_int
 from ..agent import TabularAgent, Transition
 from ..tables import InitialValue, initial_values, read_only
 from .traces import _TRACE_PARAMS_DOC, _TraceLearner
@@ -304,9 +304,9 @@ class TD0(_PolicyLearner):
                 )
             alpha = self._alpha_const
         else:
-            alpha = check_in_range(name, "step_size", step_size, 0.0, 1.0, low_open=True)
-        tol = check_in_range(name, "tol", tol, 0.0, math.inf, low_open=True)
-        max_sweeps = check_positive_int(name, "max_sweeps", max_sweeps)
+            alpha = require_in_range(name, "step_size", step_size, 0.0, 1.0, low_open=True)
+        tol = require_in_range(name, "tol", tol, 0.0, math.inf, low_open=True)
+        max_sweeps = require_positive_int(name, "max_sweeps", max_sweeps)
         rows = []
         for episode in episodes:
             for item in episode:

@@ -24,7 +24,7 @@ from typing import Any, ClassVar
 import numpy as np
 
 from .._greedy import masked_max
-from .._validation import check_in_range
+from .._validation import require_in_range
 from ..agent import TabularAgent, Transition
 from ._commit import CommitsNextAction
 from ._traces_math import check_trace, trace_step
@@ -48,9 +48,9 @@ class _TraceLearner(TabularAgent):
         **kwargs: Any,
     ) -> None:
         name = type(self).__name__
-        self.lam = check_in_range(name, "lam", lam, 0.0, 1.0)
+        self.lam = require_in_range(name, "lam", lam, 0.0, 1.0)
         self.trace = check_trace(name, trace)
-        self.trace_cutoff = check_in_range(
+        self.trace_cutoff = require_in_range(
             name, "trace_cutoff", trace_cutoff, 0.0, 1.0, high_open=True,
             hint="Use 0 to keep every nonzero trace (exact), or a small value like 1e-8.",
         )
