@@ -16,32 +16,60 @@ Semantics every tdkit learner honours
 * ``truncated=True`` and not terminated (a time limit): the target
   **does** bootstrap from ``next_obs``; then the episode ends.
 * Greedy choices break ties uniformly at random.
-* ``mask`` (and ``next_mask``) is a boolean array over actions; masked actions
-  are never chosen and never enter a max or expectation in a target.
+* ``mask`` (and ``next_mask``) is a boolean (or 0/1 integer) array over
+  actions; masked actions are never chosen and never enter a max or
+  expectation in a target.
+
+The per-step path
+-----------------
+The public tables are numpy arrays, but one numpy scalar costs several times a
+Python float, so :class:`TabularAgent` reads and writes single entries through
+flat memory views of the same arrays and reads a row as a tuple of floats
+(:meth:`TabularAgent._row`); greedy choices then use the pure-Python forms in
+:mod:`tdkit._greedy`, which pick the same action from the same random numbers
+as the numpy forms. Each distinct mask is checked and turned into an
+:class:`~tdkit._greedy.ActionSet` once (:class:`~tdkit._greedy.ActionSets`);
+transitions carry its read-only boolean array.
 """
 
 from __future__ import annotations
 
-import math
 import operator
+import struct
 from collections.abc import Sequence
-from typing import Any, ClassVar, Protocol, runtime_checkable
+from typing import Any, ClassVar, NamedTuple, Protocol, runtime_checkable
 
 import numpy as np
 
 from ._errors import InvalidParameterError
-from ._greedy import check_mask, greedy_action
+from ._greedy import ActionSets, greedy_index
 from ._seeding import SeedLike, as_generator
 from ._validation import require_in_range, require_positive_int
-from .exploration import Exploration, as_exploration
+from .exploration import EpsilonGreedy, Exploration, as_exploration
 from .schedules import Constant, Schedule, as_schedule
 from .tables import ActionValueTable, InitialValue, read_only
 
 __all__ = ["Agent", "TabularAgent", "Transition"]
 
-#: One observed transition after encoding:
-#: (state, action, reward, next_state, terminated, truncated, next_mask)
-Transition = tuple[int, int, float, int, bool, bool, "np.ndarray | None"]
+
+
+class Transition(NamedTuple):
+    """One observed transition after encoding, in ``observe``'s argument order.
+
+    ``next_mask`` is None or the read-only boolean array of the
+    :class:`~tdkit._greedy.ActionSet` of the mask given to ``observe``.
+    """
+
+    state: int
+    action: int
+    reward: float
+    next_state: int
+    terminated: bool
+    truncated: bool
+    next_mask: np.ndarray | None = None
+
+
+_new_tuple = tuple.__new__  # builds a Transition without the Python-level __new__
 
 
 @runtime_checkable
@@ -106,6 +134,25 @@ class TabularAgent:
     #: Names of the algorithm-specific constructor keywords (for get_params / store).
     _extra_params: ClassVar[tuple[str, ...]] = ()
 
+    # Views onto the tables and other per-process helpers of the per-step path.
+    # They are rebuilt from the tables (``_bind_tables``), never state: slots keep
+    # them out of ``vars(agent)``, and pickling drops them (``__getstate__``).
+    __slots__ = (
+        "__dict__",
+        "__weakref__",
+        "_actions_plain",
+        "_draw",
+        "_eps_rule",
+        "_qbytes",
+        "_qv",
+        "_row_bytes",
+        "_sets",
+        "_states_plain",
+        "_unpack_row",
+        "_vv",
+        "_width",
+    )
+
     def __init__(
         self,
         n_states: int,
@@ -144,6 +191,35 @@ class TabularAgent:
         self._pending: list[Transition] = []
         self.steps_ = 0
         self.episodes_ = 0
+        self._bind_tables()
+
+    def _bind_tables(self) -> None:
+        """(Re)build the per-step views onto ``_q`` and ``_visits`` (C-contiguous 2-D arrays)."""
+        q, visits = self._q, self._visits
+        if not (q.flags.c_contiguous and visits.flags.c_contiguous):  # pragma: no cover
+            raise RuntimeError(f"{type(self).__name__}: tables must be C-contiguous.")
+        self._width = width = q.shape[1]
+        self._qbytes = memoryview(q).cast("B")
+        self._qv = self._qbytes.cast("d")
+        self._vv = memoryview(visits).cast("B").cast("q")
+        self._row_bytes = 8 * width
+        self._unpack_row = struct.Struct(f"{width}d").unpack_from
+        self._draw = self._rng.random
+        self._sets = ActionSets(self.n_actions)
+        explore = self._explore
+        self._eps_rule = explore if type(explore) is EpsilonGreedy else None
+        # Without encoders, a Python int in range is its own index: the per-step
+        # methods test ``type(x) is int and 0 <= x < _states_plain`` before calling
+        # the encoder (-1 when there is an encoder, so the test always fails).
+        self._states_plain = self.n_states if self.state_encoder is None else -1
+        self._actions_plain = self.n_actions if self.action_encoder is None else -1
+
+    def __getstate__(self) -> dict[str, Any]:
+        return dict(self.__dict__)
+
+    def __setstate__(self, state: dict[str, Any]) -> None:
+        self.__dict__.update(state)
+        self._bind_tables()
 
     # ------------------------------------------------------------------ set-up
     def _init_tables(self, initial_value: InitialValue) -> None:
@@ -292,22 +368,49 @@ class TabularAgent:
         explore : bool, default True
             False gives the greedy action (ties broken uniformly at random).
         """
-        s = self._encode(obs)
+        s = obs if type(obs) is int and 0 <= obs < self._states_plain else self._encode(obs)
         if mask is not None:
-            mask = check_mask(mask, self.n_actions)
+            mask = self._sets.get(mask).mask
         return self._env_action(self._choose(s, mask, explore))
 
-    def _behaviour_values(self, s: int) -> np.ndarray:
-        """The values the behaviour policy ranks actions by (a row of the table)."""
-        return self._q[s]
+    def _row(self, s: int) -> tuple[float, ...]:
+        """Row ``s`` of ``_q`` as a tuple of Python floats."""
+        return self._unpack_row(self._qbytes, s * self._row_bytes)
 
     def _choose(self, s: int, mask: np.ndarray | None, explore: bool) -> int:
-        values = self._behaviour_values(s)
-        if explore:
+        """The behaviour (``explore``) or greedy action in ``s``; ``mask`` as transitions carry it.
+
+        ε-greedy (:class:`~tdkit.exploration.EpsilonGreedy` itself) runs in
+        pure Python; other rules get the numpy row. Both draw the same numbers.
+        """
+        rule = self._eps_rule
+        if explore and rule is None:
             return self._explore.select(
-                values, mask, self._rng, step=self.steps_, counts=self._counts_for(s)
+                self._q[s], mask, self._rng, step=self.steps_, counts=self._counts_for(s)
             )
-        return greedy_action(values, mask, self._rng)
+        allowed = None if mask is None else self._sets.of(mask)
+        draw = self._draw
+        if explore:
+            eps = rule._fixed  # type: ignore[union-attr]
+            if eps is None:
+                eps = rule.current(self.steps_)  # type: ignore[union-attr]
+            if eps > 0.0 and draw() < eps:
+                if allowed is None:
+                    return int(draw() * self.n_actions)
+                indices = allowed.indices
+                return indices[int(draw() * len(indices))]
+        row = self._unpack_row(self._qbytes, s * self._row_bytes)
+        # A single maximum needs no draw; ties and NaN go to greedy_index.
+        if allowed is None:
+            top = max(row)
+            if row.count(top) == 1 and top == top:
+                return row.index(top)
+        else:
+            values = allowed.take(row)
+            top = max(values)
+            if values.count(top) == 1 and top == top:
+                return allowed.indices[values.index(top)]
+        return greedy_index(row, allowed, draw)
 
     def _counts_for(self, s: int) -> np.ndarray | None:
         """The visit counts of ``s`` when the exploration rule reads them, else None."""
@@ -326,22 +429,30 @@ class TabularAgent:
     ) -> None:
         """Record one transition; :meth:`update` applies it."""
         r = float(reward)
-        if not math.isfinite(r):
+        if r - r != 0.0:  # inf or NaN
             raise InvalidParameterError(
                 f"{type(self).__name__}.observe: reward must be finite; got {reward!r}. "
                 "The table was not changed."
             )
         if next_mask is not None:
-            next_mask = check_mask(next_mask, self.n_actions, name="next_mask")
+            next_mask = self._sets.get(next_mask, "next_mask").mask
+        n = self._states_plain
+        s = obs if type(obs) is int and 0 <= obs < n else self._encode(obs)
+        s2 = next_obs if type(next_obs) is int and 0 <= next_obs < n else self._encode(next_obs)
+        a = (
+            action
+            if type(action) is int and 0 <= action < self._actions_plain
+            else self._action_index(action)
+        )
         self._pending.append(
-            (
-                self._encode(obs),
-                self._action_index(action),
-                r,
-                self._encode(next_obs),
-                bool(terminated),
-                bool(truncated),
-                next_mask,
+            _new_tuple(
+                Transition,
+                (
+                    s, a, r, s2,
+                    True if terminated else False,
+                    True if truncated else False,
+                    next_mask,
+                ),
             )
         )
         self.steps_ += 1
@@ -383,6 +494,19 @@ class TabularAgent:
         ``visits[s, a]`` is incremented first, so per-pair schedules see the
         count including this update.
         """
+        if values is self._q and visits is self._visits:
+            k = s * self._width + a
+            vv = self._vv
+            n = vv[k] + 1
+            vv[k] = n
+            alpha = self._alpha_const
+            if alpha is None:
+                alpha = self._step_size.value(self.steps_, n)
+            qv = self._qv
+            old = qv[k]
+            delta = target - old
+            qv[k] = old + alpha * delta
+            return float(delta)
         alpha = self._count_visit(visits, s, a)
         delta = target - values[s, a]
         values[s, a] += alpha * delta
@@ -390,11 +514,16 @@ class TabularAgent:
 
     def _count_visit(self, visits: np.ndarray, s: int, a: int) -> float:
         """Increment ``visits[s, a]`` and return the step size for this update."""
-        n = visits[s, a] + 1
-        visits[s, a] = n
+        if visits is self._visits:
+            k = s * self._width + a
+            n = self._vv[k] + 1
+            self._vv[k] = n
+        else:
+            n = int(visits[s, a]) + 1
+            visits[s, a] = n
         alpha = self._alpha_const
         if alpha is None:
-            alpha = self._step_size.value(self.steps_, int(n))
+            alpha = self._step_size.value(self.steps_, n)
         return alpha
 
     # ------------------------------------------------------------ inspection

@@ -15,7 +15,7 @@ from typing import Any
 
 import numpy as np
 
-from .._greedy import greedy_action, masked_max
+from .._greedy import greedy_action, row_max
 from ..agent import TabularAgent, Transition
 from ..tables import ActionValueTable, InitialValue, read_only
 from ._commit import CommitsNextAction
@@ -78,7 +78,14 @@ class QLearning(TabularAgent):
 
     def _learn(self, transition: Transition) -> tuple[float, ...]:
         s, a, r, s2, terminated, _truncated, next_mask = transition
-        target = r if terminated else r + self.gamma * masked_max(self._q[s2], next_mask)
+        if terminated:
+            target = r
+        else:
+            row = self._unpack_row(self._qbytes, s2 * self._row_bytes)
+            if next_mask is None:
+                target = r + self.gamma * max(row)
+            else:
+                target = r + self.gamma * row_max(row, self._sets.of(next_mask))
         return (self._td_step(self._q, self._visits, s, a, target),)
 
 
@@ -129,7 +136,8 @@ class Sarsa(CommitsNextAction, TabularAgent):
             self._drop_next_action()
             target = r
         else:
-            target = r + self.gamma * self._q[s2, self._next_action(s2, next_mask, truncated)]
+            a2 = self._next_action(s2, next_mask, truncated)
+            target = r + self.gamma * self._qv[s2 * self._width + a2]
         return (self._td_step(self._q, self._visits, s, a, target),)
 
 
