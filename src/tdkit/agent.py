@@ -34,6 +34,8 @@ transitions carry its read-only boolean array.
 
 from __future__ import annotations
 
+import functools
+import inspect
 import operator
 import struct
 from collections.abc import Sequence
@@ -44,7 +46,7 @@ import numpy as np
 from ._errors import InvalidParameterError
 from ._greedy import ActionSets, greedy_index
 from ._seeding import SeedLike, as_generator
-from ._validation import require_in_range, require_positive_int
+from ._validation import require_in_range, require_known_keywords, require_positive_int
 from .exploration import EpsilonGreedy, Exploration, as_exploration
 from .schedules import Constant, Schedule, as_schedule
 from .tables import ActionValueTable, InitialValue, read_only
@@ -70,6 +72,57 @@ class Transition(NamedTuple):
 
 
 _new_tuple = tuple.__new__  # builds a Transition without the Python-level __new__
+
+_VARIADIC = (inspect.Parameter.VAR_POSITIONAL, inspect.Parameter.VAR_KEYWORD)
+_PARAMETERS: dict[type, tuple[inspect.Parameter, ...]] = {}
+
+
+def constructor_parameters(cls: type) -> tuple[inspect.Parameter, ...]:
+    """The parameters ``cls(...)`` accepts, read from the signatures of ``__init__``.
+
+    An ``__init__`` that takes ``*args`` or ``**kwargs`` passes them on, so
+    the next ``__init__`` along the MRO adds its parameters too.
+    """
+    found = _PARAMETERS.get(cls)
+    if found is not None:
+        return found
+    params: list[inspect.Parameter] = []
+    seen = {"self"}
+    for klass in cls.__mro__:
+        init = klass.__dict__.get("__init__")
+        if init is None:
+            continue
+        passes_on = False
+        for p in inspect.signature(init).parameters.values():
+            if p.kind in _VARIADIC:
+                passes_on = True
+            elif p.name not in seen:
+                seen.add(p.name)
+                params.append(p)
+        if not passes_on:
+            break
+    _PARAMETERS[cls] = found = tuple(params)
+    return found
+
+
+def _checks_keywords(init: Any) -> Any:
+    """Wrap ``__init__`` so an unknown keyword is answered with the nearest valid one.
+
+    The wrapper keeps ``__init__``'s signature (``__wrapped__``), so
+    ``inspect.signature(cls)`` shows every parameter.
+    """
+
+    own = {p.name for p in inspect.signature(init).parameters.values() if p.kind not in _VARIADIC}
+
+    @functools.wraps(init)
+    def __init__(self: Any, *args: Any, **kwargs: Any) -> None:
+        if not kwargs.keys() <= own:
+            cls = type(self)
+            names = tuple(p.name for p in constructor_parameters(cls))
+            require_known_keywords(cls.__name__, kwargs, names, cls._keyword_hints)
+        init(self, *args, **kwargs)
+
+    return __init__
 
 
 @runtime_checkable
@@ -131,8 +184,8 @@ class TabularAgent:
         Episodes ended so far (a transition with ``terminated`` or ``truncated``).
     """
 
-    #: Names of the algorithm-specific constructor keywords (for get_params / store).
-    _extra_params: ClassVar[tuple[str, ...]] = ()
+    #: Advice for keywords a user may bring from another learner (see TD0).
+    _keyword_hints: ClassVar[dict[str, str]] = {}
 
     # Views onto the tables and other per-process helpers of the per-step path.
     # They are rebuilt from the tables (``_bind_tables``), never state: slots keep
@@ -153,6 +206,13 @@ class TabularAgent:
         "_width",
     )
 
+    def __init_subclass__(cls, **kwargs: Any) -> None:
+        super().__init_subclass__(**kwargs)
+        init = cls.__dict__.get("__init__")
+        if init is not None and not hasattr(init, "__wrapped__"):
+            cls.__init__ = _checks_keywords(init)  # type: ignore[method-assign]
+
+    @_checks_keywords
     def __init__(
         self,
         n_states: int,
@@ -334,26 +394,13 @@ class TabularAgent:
         )
 
     def get_params(self) -> dict[str, Any]:
-        """Constructor arguments, as given."""
-        params = {
-            "n_states": self.n_states,
-            "n_actions": self.n_actions,
-            "gamma": self.gamma,
-            "step_size": self.step_size,
-            "exploration": self.exploration,
-            "initial_value": self.initial_value,
-            "seed": self.seed,
-            "state_encoder": self.state_encoder,
-            "action_encoder": self.action_encoder,
-        }
-        for key in self._extra_params:
-            params[key] = getattr(self, key)
-        return params
+        """Constructor arguments, as given: one entry per parameter of the class's signature."""
+        return {p.name: getattr(self, p.name) for p in constructor_parameters(type(self))}
 
     def __repr__(self) -> str:
-        shown = ("n_states", "n_actions", "gamma", "step_size", "exploration", *self._extra_params)
-        params = self.get_params()
-        return f"{type(self).__name__}({', '.join(f'{k}={params[k]!r}' for k in shown)})"
+        """The class and its constructor arguments, leaving out those that are None."""
+        shown = ", ".join(f"{k}={v!r}" for k, v in self.get_params().items() if v is not None)
+        return f"{type(self).__name__}({shown})"
 
     # ------------------------------------------------------------ the verbs
     def act(self, obs: Any, *, mask: Any = None, explore: bool = True) -> Any:

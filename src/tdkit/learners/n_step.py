@@ -29,14 +29,18 @@ References
 from __future__ import annotations
 
 from collections import deque
-from typing import Any, ClassVar
+from typing import Any
 
 import numpy as np
 
 from .._errors import InvalidParameterError
 from .._greedy import masked_max
+from .._seeding import SeedLike
 from .._validation import require_positive_int
 from ..agent import TabularAgent, Transition
+from ..exploration import Exploration
+from ..schedules import Schedule
+from ..tables import InitialValue
 from ._commit import CommitsNextAction
 
 __all__ = ["NStepSarsa", "TreeBackup"]
@@ -50,11 +54,26 @@ _Tail = tuple[int, "np.ndarray | None", "int | None"]
 class _NStepLearner(TabularAgent):
     """Buffering, completion and flushing shared by the n-step learners."""
 
-    _extra_params: ClassVar[tuple[str, ...]] = ("n",)
-
-    def __init__(self, n_states: int, n_actions: int, *, n: int = 4, **kwargs: Any) -> None:
+    def __init__(
+        self,
+        n_states: int,
+        n_actions: int,
+        *,
+        n: int = 4,
+        gamma: float = 0.99,
+        step_size: float | Schedule = 0.1,
+        exploration: float | Schedule | Exploration = 0.1,
+        initial_value: InitialValue = 0.0,
+        seed: SeedLike = None,
+        state_encoder: Any = None,
+        action_encoder: Any = None,
+    ) -> None:
         self.n = require_positive_int(type(self).__name__, "n", n)
-        super().__init__(n_states, n_actions, **kwargs)
+        super().__init__(
+            n_states, n_actions, gamma=gamma, step_size=step_size, exploration=exploration,
+            initial_value=initial_value, seed=seed, state_encoder=state_encoder,
+            action_encoder=action_encoder,
+        )
         self._buffer: deque[_Step] = deque()
         self._mask_now: np.ndarray | None = None  # mask of S_t (next_mask of the previous step)
         self._tail: _Tail | None = None  # bootstrap data of the last step of this episode
@@ -171,18 +190,31 @@ class NStepSarsa(CommitsNextAction, _NStepLearner):
     (3.0, 2.0, 1.0)
     """
 
-    _extra_params: ClassVar[tuple[str, ...]] = ("n", "off_policy")
-
     def __init__(
-        self, n_states: int, n_actions: int, *, n: int = 4, off_policy: bool = False,
-        **kwargs: Any,
+        self,
+        n_states: int,
+        n_actions: int,
+        *,
+        n: int = 4,
+        off_policy: bool = False,
+        gamma: float = 0.99,
+        step_size: float | Schedule = 0.1,
+        exploration: float | Schedule | Exploration = 0.1,
+        initial_value: InitialValue = 0.0,
+        seed: SeedLike = None,
+        state_encoder: Any = None,
+        action_encoder: Any = None,
     ) -> None:
         if not isinstance(off_policy, (bool, np.bool_)):
             raise InvalidParameterError(
                 f"NStepSarsa: off_policy must be True or False; got {off_policy!r}."
             )
         self.off_policy = bool(off_policy)
-        super().__init__(n_states, n_actions, n=n, **kwargs)
+        super().__init__(
+            n_states, n_actions, n=n, gamma=gamma, step_size=step_size, exploration=exploration,
+            initial_value=initial_value, seed=seed, state_encoder=state_encoder,
+            action_encoder=action_encoder,
+        )
 
     def _bootstrap_action(
         self, s2: int, next_mask: np.ndarray | None, terminated: bool, truncated: bool

@@ -88,6 +88,10 @@ class QLearning(TabularAgent):
                 target = r + self.gamma * row_max(row, self._sets.of(next_mask))
         return (self._td_step(self._q, self._visits, s, a, target),)
 
+    #: Q-learning's update under a name subclasses keep when they override ``_learn``
+    #: (the planning learners apply it to real and simulated transitions alike).
+    _q_learning_step = _learn
+
 
 class Sarsa(CommitsNextAction, TabularAgent):
     r"""SARSA: on-policy TD control with the action actually taken next.
