@@ -16,8 +16,10 @@ from scipy import stats
 import tdkit
 from tdkit import learners
 
-PREDICTION = {"TD0", "TDLambda"}
+PREDICTION = {"TD0", "TDLambda", "DifferentialTD"}
 CONTROL = [getattr(learners, name) for name in learners.__all__ if name not in PREDICTION]
+# Average-reward learners take no gamma; their own contract is in tests/test_differential.py.
+DISCOUNTED = [cls for cls in CONTROL if not cls.__name__.startswith("Differential")]
 
 
 @pytest.mark.parametrize("cls", CONTROL)
@@ -60,7 +62,7 @@ def test_masked_actions_are_never_chosen(cls, seed, data):
         assert mask[agent.act(0, mask=mask, explore=False)]
 
 
-@pytest.mark.parametrize("cls", CONTROL)
+@pytest.mark.parametrize("cls", DISCOUNTED)
 def test_time_limit_is_not_a_terminal_state_in_training(cls):
     """A one-state continuing task cut every step by a time limit.
 
@@ -84,7 +86,7 @@ def test_time_limit_is_not_a_terminal_state_in_training(cls):
     assert agent.table[0, 0] == pytest.approx(10.0, abs=1e-2)
 
 
-@pytest.mark.parametrize("cls", CONTROL)
+@pytest.mark.parametrize("cls", DISCOUNTED)
 @pytest.mark.parametrize(
     ("kwargs", "name"),
     [
@@ -103,11 +105,12 @@ def test_shared_hyper_parameters_are_validated(cls, kwargs, name):
 
 # ------------------------------------------------------------ signatures and parameters
 ALL = [getattr(learners, name) for name in learners.__all__]
-SHARED = ["gamma", "step_size", "initial_value", "seed", "state_encoder", "action_encoder"]
+SHARED = ["step_size", "initial_value", "seed", "state_encoder", "action_encoder"]
+ACTING_WITH_A_POLICY = {"TD0", "TDLambda", "DifferentialTD"}
 
 
 def _required(cls):
-    return {"policy": np.full((4, 3), 1.0 / 3)} if cls.__name__ in PREDICTION else {}
+    return {"policy": np.full((4, 3), 1.0 / 3)} if cls.__name__ in ACTING_WITH_A_POLICY else {}
 
 
 @pytest.mark.parametrize("cls", ALL)
@@ -118,7 +121,8 @@ def test_signature_shows_every_keyword_and_get_params_follows_it(cls):
     assert not any(p.kind in (p.VAR_KEYWORD, p.VAR_POSITIONAL) for p in params.values())
     assert list(params)[:2] == ["n_states", "n_actions"]
     assert set(SHARED) <= set(params)
-    assert ("exploration" in params) == (cls.__name__ not in PREDICTION)
+    assert ("gamma" in params) == (not cls.__name__.startswith("Differential"))  # no discount
+    assert ("exploration" in params) == (cls.__name__ not in ACTING_WITH_A_POLICY)
     agent = cls(4, 3, seed=0, **_required(cls))
     got = agent.get_params()
     assert list(got) == list(params)
