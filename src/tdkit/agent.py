@@ -194,6 +194,7 @@ class TabularAgent:
         "__dict__",
         "__weakref__",
         "_actions_plain",
+        "_all_actions",
         "_draw",
         "_eps_rule",
         "_qbytes",
@@ -267,6 +268,7 @@ class TabularAgent:
         self._unpack_row = struct.Struct(f"{width}d").unpack_from
         self._draw = self._rng.random
         self._sets = ActionSets(self.n_actions)
+        self._all_actions = range(self.n_actions)
         explore = self._explore
         self._eps_rule = explore if type(explore) is EpsilonGreedy else None
         # Without encoders, a Python int in range is its own index: the per-step
@@ -424,6 +426,14 @@ class TabularAgent:
     def _row(self, s: int) -> tuple[float, ...]:
         """Row ``s`` of ``_q`` as a tuple of Python floats."""
         return self._unpack_row(self._qbytes, s * self._row_bytes)
+
+    def _allowed(self, mask: np.ndarray | None) -> Sequence[int]:
+        """The allowed actions of a mask as transitions carry it (all actions for None).
+
+        This is the ``allowed`` argument of the functions in
+        :mod:`tdkit.learners._targets`.
+        """
+        return self._all_actions if mask is None else self._sets.of(mask).indices
 
     def _choose(self, s: int, mask: np.ndarray | None, explore: bool) -> int:
         """The behaviour (``explore``) or greedy action in ``s``; ``mask`` as transitions carry it.
@@ -590,10 +600,18 @@ class TabularAgent:
         return ()
 
     def _td_step(
-        self, values: np.ndarray, visits: np.ndarray, s: int, a: int, target: float
+        self,
+        values: np.ndarray,
+        visits: np.ndarray,
+        s: int,
+        a: int,
+        target: float,
+        weight: float = 1.0,
     ) -> float:
-        r"""Apply :math:`Q(s,a) \leftarrow Q(s,a) + \alpha\,[G - Q(s,a)]`; return the TD error.
+        r"""Apply :math:`Q(s,a) \leftarrow Q(s,a) + \alpha\,\rho\,[G - Q(s,a)]`; return the error.
 
+        ``weight`` is :math:`\rho` (an importance-sampling ratio; 1 for
+        on-policy updates), and the returned error is :math:`\rho\,[G - Q(s,a)]`.
         ``visits[s, a]`` is incremented first, so per-pair schedules see the
         count including this update.
         """
@@ -608,10 +626,14 @@ class TabularAgent:
             qv = self._qv
             old = qv[k]
             delta = target - old
+            if weight != 1.0:
+                delta = weight * delta
             qv[k] = old + alpha * delta
             return float(delta)
         alpha = self._count_visit(visits, s, a)
         delta = target - values[s, a]
+        if weight != 1.0:
+            delta = weight * delta
         values[s, a] += alpha * delta
         return float(delta)
 

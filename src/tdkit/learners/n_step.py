@@ -29,6 +29,7 @@ References
 from __future__ import annotations
 
 from collections import deque
+from collections.abc import Sequence
 from typing import Any
 
 import numpy as np
@@ -42,6 +43,7 @@ from ..exploration import Exploration
 from ..schedules import Schedule
 from ..tables import InitialValue
 from ._commit import CommitsNextAction
+from ._targets import greedy_max, sampled_value
 
 __all__ = ["NStepSarsa", "TreeBackup"]
 
@@ -261,7 +263,7 @@ class NStepSarsa(CommitsNextAction, _NStepLearner):
             s, a = steps[j][0], steps[j][1]
             g = suffix[j]
             if not terminated:
-                g += gamma ** (length - j) * q[s2, a2]
+                g += gamma ** (length - j) * sampled_value(self._row(s2), a2)
             if not self.off_policy:
                 errors.append(self._td_step(q, self._visits, s, a, g))
                 continue
@@ -276,7 +278,7 @@ class NStepSarsa(CommitsNextAction, _NStepLearner):
             if rho == 0.0:
                 errors.append(0.0)
                 continue
-            errors.append(self._td_step(q, self._visits, s, a, q[s, a] + rho * (g - q[s, a])))
+            errors.append(self._td_step(q, self._visits, s, a, g, rho))
         return errors
 
 
@@ -338,23 +340,22 @@ class TreeBackup(_NStepLearner):
             # Recomputed for each flushed step: earlier updates may have changed Q(S_k, .).
             g = steps[-1][2]
             if not terminated:
-                g += gamma * masked_max(q[s2], mask2)
+                g += gamma * greedy_max(self._row(s2), self._allowed(mask2))
             for k in range(length - 1, j, -1):
                 sk, ak, _, mk = steps[k]
-                g = steps[k - 1][2] + gamma * _greedy_backup(q[sk], mk, ak, g)
+                g = steps[k - 1][2] + gamma * _greedy_backup(
+                    self._row(sk), self._allowed(mk), ak, g
+                )
             errors.append(self._td_step(q, self._visits, steps[j][0], steps[j][1], g))
         return errors
 
 
-def _greedy_backup(row: np.ndarray, mask: np.ndarray | None, taken: int, g: float) -> float:
+def _greedy_backup(row: Sequence[float], allowed: Sequence[int], taken: int, g: float) -> float:
     r""":math:`\sum_{a \ne A} \pi(a)\,Q(a) + \pi(A)\,G` for the greedy :math:`\pi` (ties share)."""
-    top = masked_max(row, mask)
+    top = greedy_max(row, allowed)
     if row[taken] < top:
         return top
-    ties = row == top
-    if mask is not None:
-        ties &= mask
-    k = int(ties.sum())
+    k = sum(1 for a in allowed if row[a] == top)
     if k == 1:
         return g
     return ((k - 1) * top + g) / k

@@ -28,7 +28,7 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from .._greedy import masked_max, uniform_action
+from .._greedy import uniform_action
 from .._seeding import SeedLike
 from .._validation import require_in_range, require_positive_int
 from ..agent import Transition
@@ -36,6 +36,7 @@ from ..exploration import Exploration
 from ..schedules import Schedule
 from ..tables import InitialValue
 from ._models import make_model
+from ._targets import greedy_max
 from .one_step import QLearning
 
 __all__ = ["DynaQ", "DynaQPlus", "PrioritizedSweeping"]
@@ -352,11 +353,13 @@ class PrioritizedSweeping(_PlanningLearner):
         self._pushes = 0  # entries pushed so far: the first-in-first-out tie-breaker
 
     def _model_target(self, s: int, a: int) -> float:
-        q = self._q
         gamma = self.gamma
         target = 0.0
         for p, r, s2, terminated, mask in self._model.outcomes(s, a):
-            target += p * (r if terminated else r + gamma * masked_max(q[s2], mask))
+            if terminated:
+                target += p * r
+            else:
+                target += p * (r + gamma * greedy_max(self._row(s2), self._allowed(mask)))
         return target
 
     def _queue(self, pair: tuple[int, int]) -> None:

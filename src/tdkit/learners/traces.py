@@ -21,8 +21,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from .._greedy import masked_max
 from ._commit import CommitsNextAction
+from ._targets import greedy_max, sampled_value
 from ._traces_math import TraceLearner
 
 __all__ = ["SarsaLambda", "WatkinsQLambda"]
@@ -96,7 +96,7 @@ class SarsaLambda(CommitsNextAction, TraceLearner):
         if terminated:
             self._drop_next_action()
             return 0.0
-        return float(self._q[s2, self._next_action(s2, next_mask, truncated)])
+        return sampled_value(self._row(s2), self._next_action(s2, next_mask, truncated))
 
 
 class WatkinsQLambda(TraceLearner):
@@ -163,8 +163,8 @@ class WatkinsQLambda(TraceLearner):
 
     def _before_step(self, s: int, a: int) -> None:
         if self._traces:
-            row = self._q[s]
-            if row[a] < masked_max(row, self._mask_now):
+            row = self._row(s)
+            if row[a] < greedy_max(row, self._allowed(self._mask_now)):
                 self._traces.clear()
 
     def _next_value(
@@ -172,4 +172,4 @@ class WatkinsQLambda(TraceLearner):
     ) -> float:
         if terminated:
             return 0.0
-        return masked_max(self._q[s2], next_mask)
+        return greedy_max(self._row(s2), self._allowed(next_mask))
