@@ -36,8 +36,11 @@ from __future__ import annotations
 
 import functools
 import inspect
+import numbers
 import operator
 import struct
+import sys
+import warnings
 from collections.abc import Sequence
 from typing import Any, ClassVar, NamedTuple, Protocol, runtime_checkable
 
@@ -53,6 +56,26 @@ from .tables import ActionValueTable, InitialValue, read_only
 
 __all__ = ["Agent", "TabularAgent", "Transition"]
 
+
+def _real_reward(agent: Any, reward: Any) -> float:
+    """``reward`` as a float when it is a real number (not a bool or a string)."""
+    if isinstance(reward, numbers.Real) and not isinstance(reward, (bool, np.bool_)):
+        return float(reward)
+    raise InvalidParameterError(
+        f"{type(agent).__name__}.observe: reward must be a real number; got {reward!r} of "
+        f"type {type(reward).__name__}. Convert it with float(...) in the simulator. "
+        "Nothing was recorded."
+    )
+
+
+def _flag(agent: Any, name: str, value: Any) -> bool:
+    """A numpy bool as a bool; anything else that is not a bool is refused."""
+    if isinstance(value, np.bool_):
+        return bool(value)
+    raise InvalidParameterError(
+        f"{type(agent).__name__}.observe: {name} must be True or False; got {value!r} of "
+        f"type {type(value).__name__}. Nothing was recorded."
+    )
 
 
 class Transition(NamedTuple):
@@ -320,6 +343,11 @@ class TabularAgent:
             self._env_action = aenc.to_env
 
     def _encode_int_state(self, obs: Any) -> int:
+        if isinstance(obs, (bool, np.bool_)):
+            raise InvalidParameterError(
+                f"{type(self).__name__}: observation {obs!r} is a bool, not a state index. "
+                "Pass integer states (or a state_encoder from tdkit.encoders)."
+            )
         try:
             s = operator.index(obs)
         except TypeError:
@@ -485,13 +513,23 @@ class TabularAgent:
         *,
         next_mask: Any = None,
     ) -> None:
-        """Record one transition; :meth:`update` applies it."""
-        r = float(reward)
+        """Record one transition; :meth:`update` applies it.
+
+        ``reward`` must be a real number (not a bool or a string) and finite;
+        ``terminated`` and ``truncated`` must be booleans (Python or numpy).
+        Anything else raises :class:`~tdkit.InvalidParameterError` and records
+        nothing.
+        """
+        r = reward if type(reward) is float else _real_reward(self, reward)
         if r - r != 0.0:  # inf or NaN
             raise InvalidParameterError(
                 f"{type(self).__name__}.observe: reward must be finite; got {reward!r}. "
                 "The table was not changed."
             )
+        if terminated is not True and terminated is not False:
+            terminated = _flag(self, "terminated", terminated)
+        if truncated is not True and truncated is not False:
+            truncated = _flag(self, "truncated", truncated)
         if next_mask is not None:
             next_mask = self._sets.get(next_mask, "next_mask").mask
         n = self._states_plain
@@ -502,18 +540,27 @@ class TabularAgent:
             if type(action) is int and 0 <= action < self._actions_plain
             else self._action_index(action)
         )
-        self._pending.append(
-            _new_tuple(
-                Transition,
-                (
-                    s, a, r, s2,
-                    True if terminated else False,
-                    True if truncated else False,
-                    next_mask,
-                ),
-            )
+        pending = self._pending
+        pending.append(
+            _new_tuple(Transition, (s, a, r, s2, terminated, truncated, next_mask))
         )
         self.steps_ += 1
+        if len(pending) >= self._pile_up_limit:
+            self._warn_pile_up(len(pending))
+
+    #: Pending transitions at which ``observe`` warns that ``update`` is not called
+    #: (no correct loop reaches it: train calls update after every observe).
+    _pile_up_limit: int = 100_000
+
+    def _warn_pile_up(self, count: int) -> None:
+        warnings.warn(
+            f"{type(self).__name__}: {count} transitions were observed without an update(); "
+            "they are held in memory and nothing is learned until update() is called. Call "
+            "agent.update() after each observe() (tdkit.train does).",
+            RuntimeWarning,
+            stacklevel=3,
+        )
+        self._pile_up_limit = sys.maxsize  # warn once per learner
 
     def update(self) -> tuple[float, ...]:
         """Apply the pending updates; return their TD errors (``()`` if none)."""
@@ -569,8 +616,8 @@ class TabularAgent:
         pending = self._pending
         if pending:
             last = pending[-1]
-            if not (last[4] or last[5]):
-                pending[-1] = (*last[:5], True, last[6])
+            if not (last.terminated or last.truncated):
+                pending[-1] = last._replace(truncated=True)
             return self.update()
         if self.steps_ == self._steps_at_episode_end:
             return ()
