@@ -22,6 +22,7 @@ unchanged; :attr:`values_table` (alias :attr:`v`, and :attr:`table`) is its
 from __future__ import annotations
 
 import math
+import warnings
 from collections.abc import Callable, Iterable, Sequence
 from typing import Any, ClassVar
 
@@ -237,7 +238,8 @@ class TD0(_PolicyLearner):
         *,
         step_size: float | None = None,
         tol: float = 1e-12,
-        max_sweeps: int = 100_000,
+        max_iterations: int = 100_000,
+        max_sweeps: int | None = None,
     ) -> int:
         r"""Batch TD(0): sweep a fixed set of episodes until the values stop changing.
 
@@ -265,7 +267,11 @@ class TD0(_PolicyLearner):
             :math:`\alpha \in (0, 1]`; default the learner's constant step size.
         tol : float, default 1e-12
             Stop when no value changes by more than this in a sweep.
-        max_sweeps : int, default 100000
+        max_iterations : int, default 100000
+            Most sweeps to run.
+        max_sweeps : int, optional
+            Deprecated spelling of ``max_iterations`` (a ``FutureWarning``;
+            removed in 0.3.0).
 
         Returns
         -------
@@ -276,7 +282,7 @@ class TD0(_PolicyLearner):
         ------
         ValueError
             On a malformed transition, a schedule step size without an
-            explicit ``step_size``, or no convergence within ``max_sweeps``.
+            explicit ``step_size``, or no convergence within ``max_iterations``.
 
         Examples
         --------
@@ -297,7 +303,15 @@ class TD0(_PolicyLearner):
         else:
             alpha = require_in_range(name, "step_size", step_size, 0.0, 1.0, low_open=True)
         tol = require_in_range(name, "tol", tol, 0.0, math.inf, low_open=True)
-        max_sweeps = require_positive_int(name, "max_sweeps", max_sweeps)
+        if max_sweeps is not None:
+            warnings.warn(
+                f"{name}: max_sweeps is deprecated and will be removed in tdkit 0.3.0; use "
+                "max_iterations=... (the name every tdkit solver uses).",
+                FutureWarning,
+                stacklevel=2,
+            )
+            max_iterations = max_sweeps
+        max_sweeps = require_positive_int(name, "max_iterations", max_iterations)
         rows = []
         for episode in episodes:
             for item in episode:
@@ -330,8 +344,8 @@ class TD0(_PolicyLearner):
             if np.max(np.abs(change)) <= tol:
                 return sweep
         raise InvalidParameterError(
-            f"{name}: no convergence within max_sweeps={max_sweeps} (last change "
-            f"{float(np.max(np.abs(change))):.3g} > tol={tol:g}); raise max_sweeps or tol, or "
+            f"{name}: no convergence within max_iterations={max_sweeps} (last change "
+            f"{float(np.max(np.abs(change))):.3g} > tol={tol:g}); raise max_iterations or tol, or "
             "check that every episode can reach its end (gamma = 1 needs proper episodes)."
         )
 
