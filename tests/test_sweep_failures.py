@@ -46,6 +46,12 @@ def failing_agent(env, seed, *, mode="ok", **setting):
         os._exit(3)
     if mode == "warn":
         warnings.warn("the table is larger than it needs to be", UserWarning, stacklevel=1)
+    if mode.startswith("kill-once:"):  # killed from outside the first time only
+        marker = mode.split(":", 1)[1]
+        if not os.path.exists(marker):
+            with open(marker, "w"):
+                pass
+            os.kill(os.getpid(), signal.SIGKILL)
     return tdkit.QLearning.for_env(env, seed=seed, **setting)
 
 
@@ -195,6 +201,19 @@ def test_a_task_that_killed_its_dask_workers_is_named_without_a_re_run():
     with pytest.raises(SweepRunError, match=r"mode='kill'.*seed 0: it killed its worker"):
         run_sweep(failing_agent, MAKE_ENV, seeds=[0, 1], settings={"mode": ["ok", "kill"]},
                   episodes=3, executor=_ClusterThatLosesWorkers())
+
+
+def test_a_worker_killed_from_outside_loses_no_run(tmp_path):
+    # The first attempt of the run dies (as if the machine killed the worker); re-run alone
+    # it finishes, so nothing is blamed, every result is kept, and a warning says why.
+    settings = {"mode": ["ok", f"kill-once:{tmp_path / 'killed'}"]}
+    with pytest.warns(RuntimeWarning, match="each finished when re-run alone"):
+        result = run_sweep(failing_agent, MAKE_ENV, seeds=[0, 1], settings=settings,
+                           episodes=3, max_workers=2)
+    assert len(result) == 4 and not result.failures and result.missing == ()
+    alone = run_sweep(failing_agent, MAKE_ENV, seeds=[0, 1], settings=settings, episodes=3,
+                      max_workers=1)
+    assert _comparable(result) == _comparable(alone)
 
 
 def test_a_broken_user_pool_is_replaced_and_the_remaining_runs_complete():
