@@ -253,3 +253,35 @@ def test_an_endless_simulator_finishes_under_a_time_limit_or_a_step_budget(worke
         assert run.history.ends.tolist() == [1, 1, 1]  # truncated by the time limit
     budget = run_sweep(MAKE_Q, make_env, seeds=[0, 1], steps=60, max_workers=workers)
     assert [run.history.total_steps for run in budget] == [60, 60]
+
+
+def _long_chain(n: int) -> tdkit.FiniteMDP:
+    # n + 1 states in a row; every action moves one state right; the last one is terminal,
+    # so every episode from state 0 lasts exactly n steps.
+    p = np.zeros((n + 1, 2, n + 1))
+    for s in range(n):
+        p[s, :, s + 1] = 1.0
+    p[n, :, n] = 1.0
+    terminal = np.zeros(n + 1, dtype=bool)
+    terminal[n] = True
+    initial = np.zeros(n + 1)
+    initial[0] = 1.0
+    return tdkit.FiniteMDP(p, np.zeros((n + 1, 2)), gamma=1.0, terminal=terminal,
+                           initial=initial)
+
+
+@pytest.mark.skipif(
+    __import__("multiprocessing").get_start_method() != "fork",
+    reason="the lowered threshold reaches the workers through fork",
+)
+def test_the_endless_episode_warning_of_a_worker_reaches_the_caller(monkeypatch):
+    # The driver warns when an episode under episodes= passes a large step count (10^6 by
+    # default); lowered to 50 here, an episode of 60 steps stands for one that never ends.
+    from tdkit.runs import EndlessEpisodeWarning
+
+    monkeypatch.setattr(tdkit.loop, "_ENDLESS_STEPS", 50)
+    with pytest.warns(EndlessEpisodeWarning,
+                      match=r"run with setting default, seed 0: episode 0 has run for 50 steps"):
+        result = run_sweep(MAKE_Q, _long_chain(60).to_env, seeds=[0, 1], episodes=1,
+                           max_workers=2)
+    assert [run.history.lengths.tolist() for run in result] == [[60], [60]]
