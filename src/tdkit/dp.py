@@ -35,6 +35,7 @@ from typing import Any, NamedTuple
 import numpy as np
 
 from ._errors import InvalidParameterError, TdkitError
+from ._progress import progress_bar
 from ._validation import require_in_range, require_positive_int
 from .envs.finite import FiniteMDP
 
@@ -619,16 +620,8 @@ def _evaluate_krylov(chain: FiniteMDP, tol: float) -> tuple[np.ndarray, bool] | 
 
 
 def _progress_bar(owner: str, enabled: bool, total: int) -> Any:
-    """A tqdm bar counting sweeps (tqdm imported only when asked for)."""
-    if not enabled:
-        return None
-    try:
-        from tqdm.auto import tqdm
-    except ImportError as exc:  # pragma: no cover - depends on the environment
-        raise ImportError(
-            f"{owner}: progress=True needs tqdm: pip install 'tdkit[progress]'"
-        ) from exc
-    return tqdm(total=total, unit="sweep", desc=owner)
+    """A bar counting sweeps (:func:`tdkit._progress.progress_bar`), or None."""
+    return progress_bar(owner, total, enabled, unit="sweep", desc=owner)
 
 
 def _fixed_point(
