@@ -15,8 +15,8 @@ import pytest
 
 import tdkit
 from tdkit import InvalidParameterError
-from tdkit._runs import seeded_run
 from tdkit.envs.problems import gridworld_4x4
+from tdkit.runs._one_run import seeded_run
 from tdkit.sweep import SweepResult, SweepRunError, run_sweep
 from tdkit.verify import agent_factory
 
