@@ -46,8 +46,8 @@ def main() -> None:
         tdkit.train(agent, env, steps=args.steps, seed=seed)
         rbar.append(agent.average_reward)
         table = agent.table  # greedy as act(explore=False) plays it: ties uniform
-        best = table == table.max(axis=1, keepdims=True)
-        greedy.append(tdkit.policy_gain(mdp, best / best.sum(axis=1, keepdims=True)))
+        ties = table == table.max(axis=1, keepdims=True)
+        greedy.append(tdkit.policy_gain(mdp, ties / ties.sum(axis=1, keepdims=True)))
     rbar_err = np.array(rbar) - best.gain
     rel_gap = (best.gain - np.array(greedy)) / (best.gain - everyone)
     print(f"DifferentialQLearning, {args.steps} steps, {SETTING}, seeds {args.first_seed}.."
