@@ -156,8 +156,9 @@ def test_differential_q_learning_reaches_near_the_exact_gain(mdp, solution):
     mean 0.023 and maximum 0.113 over seeds 0-99, but 2 of seeds 100-299 above 0.25,
     one near gain 0: untried states whose two values are still tied at 0 were read as
     "reject", and a chain that reaches them with every server free stays there. Read as
-    the agent acts (ties uniform), as here and in the script now, that artifact is gone;
-    the failure rate of the margin for this reading is not yet measured over many seeds.
+    the agent acts (ties uniform), as here and in the script now: seeds 100-199 give a
+    mean of 0.023 and a maximum of 0.104, 0 of 100 above 0.25 (one-sided 95% bound on
+    the failure rate: 3%; not derived for 1/1000).
     The seed is fixed, so the test is deterministic. Exploration 0.1 (common practice)
     and step sizes 1 / n(s, a)^0.6 (Even-Dar & Mansour 2003, "Learning rates for
     Q-learning", JMLR 5).
