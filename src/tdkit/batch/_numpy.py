@@ -45,7 +45,7 @@ class _StepSizes:
         return values[inverse.reshape(counts.shape)]
 
 
-def _check_finite(q: np.ndarray) -> None:
+def _raise_on_nan(q: np.ndarray) -> None:
     """Raise if a learner's values hold NaN (checked once per block of steps).
 
     A NaN makes greedy undefined; until the end of the block the choices of
@@ -186,7 +186,7 @@ def run_numpy(setup: Setup, q: np.ndarray, rng: np.random.Generator, steps: int)
                 s2 = s2.copy()
                 s2[ids] = start_states(u[1][ids])
             state = s2
-        _check_finite(q)
+        _raise_on_nan(q)
 
     return BatchResult(
         learner=learner,

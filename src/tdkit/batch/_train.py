@@ -11,7 +11,7 @@ from numpy.typing import ArrayLike
 
 from .._errors import InvalidParameterError
 from .._seeding import SeedLike, as_generator
-from .._validation import check_in_range, check_positive_int
+from .._validation import require_in_range, require_positive_int
 from ..envs.finite import FiniteMDP
 from ..exploration import EpsilonGreedy, Softmax
 from ..schedules import Schedule, as_schedule
@@ -20,9 +20,9 @@ from ._result import BatchResult
 from ._setup import (
     Setup,
     build_setup,
-    check_learner,
-    check_mdp,
     initial_tables,
+    require_learner,
+    require_mdp,
     step_size_kind,
 )
 
@@ -197,17 +197,17 @@ def train_batch(
     512 learners its length had median 598 and maximum 4085 steps.)
     """
     owner = "train_batch"
-    mdp = check_mdp(mdp)
-    learner = check_learner(learner)
-    n_learners = check_positive_int(owner, "n_learners", n_learners)
-    steps = check_positive_int(owner, "steps", steps)
+    mdp = require_mdp(mdp)
+    learner = require_learner(learner)
+    n_learners = require_positive_int(owner, "n_learners", n_learners)
+    steps = require_positive_int(owner, "steps", steps)
     schedule = as_schedule(
         step_size, owner=owner, name="step_size", low=0.0, high=1.0, low_open=True,
         hint="Use a float or a schedule from tdkit.schedules.",
     )
     if max_episode_steps is not None:
-        max_episode_steps = check_positive_int(owner, "max_episode_steps", max_episode_steps)
-    gamma = mdp.gamma if gamma is None else check_in_range(owner, "gamma", gamma, 0.0, 1.0)
+        max_episode_steps = require_positive_int(owner, "max_episode_steps", max_episode_steps)
+    gamma = mdp.gamma if gamma is None else require_in_range(owner, "gamma", gamma, 0.0, 1.0)
     setup = build_setup(
         mdp, learner, exploration=exploration, step_size=schedule, masks=masks,
         gamma=float(gamma), max_episode_steps=max_episode_steps,
