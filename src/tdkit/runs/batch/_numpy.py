@@ -4,9 +4,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..envs._successors import sample_slots
-from ..learners import _targets
-from ..schedules import Schedule
+from ...envs._successors import sample_slots
+from ...learners import _targets
+from ...schedules import Schedule
 from ._result import BatchResult, split_episodes
 from ._setup import Setup, schedule_values, step_size_kind, uniform_blocks
 

@@ -23,12 +23,12 @@ from typing import Any
 
 import numpy as np
 
-from .._errors import InvalidParameterError
-from ..envs._successors import SuccessorTables, successor_tables
-from ..envs.finite import FiniteMDP
-from ..exploration import EpsilonGreedy, Exploration, Softmax, as_exploration
-from ..schedules import Constant, Linear, Schedule, VisitCount
-from ..tables import initial_values
+from ..._errors import InvalidParameterError
+from ...envs._successors import SuccessorTables, successor_tables
+from ...envs.finite import FiniteMDP
+from ...exploration import EpsilonGreedy, Exploration, Softmax, as_exploration
+from ...schedules import Constant, Linear, Schedule, VisitCount
+from ...tables import initial_values
 
 __all__ = [
     "LEARNERS",

@@ -9,12 +9,12 @@ from typing import Any
 import numpy as np
 from numpy.typing import ArrayLike
 
-from .._errors import InvalidParameterError
-from .._seeding import SeedLike, as_generator
-from .._validation import require_in_range, require_positive_int
-from ..envs.finite import FiniteMDP
-from ..exploration import EpsilonGreedy, Softmax
-from ..schedules import Schedule, as_schedule
+from ..._errors import InvalidParameterError
+from ..._seeding import SeedLike, as_generator
+from ..._validation import require_in_range, require_positive_int
+from ...envs.finite import FiniteMDP
+from ...exploration import EpsilonGreedy, Softmax
+from ...schedules import Schedule, as_schedule
 from ._numpy import run_numpy
 from ._result import BatchResult
 from ._setup import (

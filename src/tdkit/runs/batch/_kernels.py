@@ -23,8 +23,8 @@ from typing import Any
 import numba
 import numpy as np
 
-from ..envs import _successors
-from ..learners import _targets
+from ...envs import _successors
+from ...learners import _targets
 from ._result import BatchResult, split_episodes
 from ._setup import LEARNERS, Setup, schedule_values, step_size_kind, uniform_blocks
 
