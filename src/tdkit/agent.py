@@ -106,6 +106,13 @@ class TabularAgent:
     #: Names of the algorithm-specific constructor keywords (for get_params / store).
     _extra_params: ClassVar[tuple[str, ...]] = ()
 
+    #: The learned state :mod:`tdkit.store` saves, as ``(attribute, kind)`` pairs;
+    #: subclasses declare only their own fields (see :mod:`tdkit.store` for the kinds).
+    _saved_state: ClassVar[tuple[tuple[str, str], ...]] = (
+        ("_q", "values"), ("_visits", "counts"), ("steps_", "counter"),
+        ("episodes_", "counter"), ("_pending", "per_episode"),
+    )
+
     def __init__(
         self,
         n_states: int,

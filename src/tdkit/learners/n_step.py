@@ -51,6 +51,9 @@ class _NStepLearner(TabularAgent):
     """Buffering, completion and flushing shared by the n-step learners."""
 
     _extra_params: ClassVar[tuple[str, ...]] = ("n",)
+    _saved_state: ClassVar[tuple[tuple[str, str], ...]] = (
+        ("_buffer", "per_episode"), ("_mask_now", "per_episode"), ("_tail", "per_episode"),
+    )
 
     def __init__(self, n_states: int, n_actions: int, *, n: int = 4, **kwargs: Any) -> None:
         self.n = check_positive_int(type(self).__name__, "n", n)

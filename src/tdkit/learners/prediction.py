@@ -44,6 +44,9 @@ class _PolicyLearner(TabularAgent):
     """Acting with a given policy and a state-value table (shared by TD0 and TDLambda)."""
 
     _extra_params: ClassVar[tuple[str, ...]] = ("policy",)
+    _saved_state: ClassVar[tuple[tuple[str, str], ...]] = (
+        ("_q", "state_values"), ("_visits", "state_counts"),
+    )
 
     def __init__(
         self,

@@ -36,6 +36,10 @@ class _TraceLearner(TabularAgent):
     """Trace bookkeeping shared by the trace learners (control and prediction)."""
 
     _extra_params: ClassVar[tuple[str, ...]] = ("lam", "trace", "trace_cutoff")
+    _saved_state: ClassVar[tuple[tuple[str, str], ...]] = (
+        ("_traces", "per_episode"), ("_q_old", "per_episode"), ("_expect", "per_episode"),
+        ("_mask_now", "per_episode"),
+    )
 
     def __init__(
         self,
