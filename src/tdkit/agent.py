@@ -388,11 +388,24 @@ class TabularAgent:
         r"""Apply :math:`Q(s,a) \leftarrow Q(s,a) + \alpha\,[G - Q(s,a)]`; return the TD error.
 
         ``visits[s, a]`` is incremented first, so per-pair schedules see the
-        count including this update.
+        count including this update. An update that would overflow the entry
+        to inf or NaN (rewards near the float limit) raises
+        :class:`~tdkit.InvalidParameterError` naming the step, and leaves the
+        table and the counts as they were.
         """
         alpha = self._count_visit(visits, s, a)
-        delta = target - values[s, a]
-        values[s, a] += alpha * delta
+        q = values[s, a]
+        delta = target - q
+        new = q + alpha * delta
+        if not math.isfinite(new):
+            visits[s, a] -= 1
+            raise InvalidParameterError(
+                f"{type(self).__name__}: the update at step {self.steps_} (state {s}, action "
+                f"{a}, target {float(target)!r}) overflows Q to {float(new)!r}. Rewards and "
+                "values this close to the float limit cannot be learned; rescale the rewards. "
+                "The table was not changed."
+            )
+        values[s, a] = new
         return float(delta)
 
     def _count_visit(self, visits: np.ndarray, s: int, a: int) -> float:
