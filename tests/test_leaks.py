@@ -65,7 +65,8 @@ def test_temporaries_of_live_processes_and_of_other_files_are_left_alone(tmp_pat
 
 def _overflow_learners():
     uniform = np.full((2, 1), 1.0)
-    special = {"TD0": {"policy": uniform}, "NStepSarsa": {"n": 1}, "TreeBackup": {"n": 1}}
+    special = {"TD0": {"policy": uniform}, "DifferentialTD": {"policy": uniform},
+               "NStepSarsa": {"n": 1}, "TreeBackup": {"n": 1}}
     # The trace learners apply their updates through the shared trace step, not _td_step.
     skip = {"SarsaLambda", "WatkinsQLambda", "TDLambda"}
     return [pytest.param(n, special.get(n, {}), id=n)
@@ -78,7 +79,8 @@ def test_rewards_near_the_float_limit_raise_naming_the_step_and_leave_the_table(
     # Two states in a loop, reward 1e308, gamma = 1, alpha = 1: the second update's target
     # 1e308 + 1e308 overflows to inf (IEEE 754 doubles top out near 1.8e308).
     cls = getattr(tdkit.learners, name)
-    agent = cls(2, 1, gamma=1.0, step_size=1.0, seed=0, **extra)
+    undiscounted = {} if name.startswith("Differential") else {"gamma": 1.0}
+    agent = cls(2, 1, step_size=1.0, seed=0, **undiscounted, **extra)
     s = 0
     with pytest.raises(InvalidParameterError, match=r"at step \d+ .*overflows") as info:
         for _ in range(10):

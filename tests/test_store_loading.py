@@ -31,6 +31,7 @@ def _extra_kwargs(name: str) -> dict:
     uniform = np.full((S, A), 1.0 / A)
     return {
         "TD0": {"policy": uniform},
+        "DifferentialTD": {"policy": uniform},
         "TDLambda": {"policy": uniform, "lam": 0.8},
         "DynaQ": {"model": "counts", "planning_steps": 3},
         "DynaQPlus": {"kappa": 0.01, "planning_steps": 3},
@@ -40,6 +41,11 @@ def _extra_kwargs(name: str) -> dict:
         "SarsaLambda": {"lam": 0.9, "trace": "dutch"},
         "WatkinsQLambda": {"lam": 0.9},
     }.get(name, {})
+
+
+def _gamma(name: str) -> dict:
+    """gamma=0.9, for the learners that discount (average-reward learners do not)."""
+    return {} if name.startswith("Differential") else {"gamma": 0.9}
 
 
 def drive(agent, steps: int, seed: int, *, end_last: bool = True) -> list:
@@ -71,7 +77,7 @@ def base_file(name: str, tmp_path_factory) -> tuple[dict, dict]:
     """(meta, arrays) of a saved learner of class ``name`` with non-trivial state."""
     if name not in _BASE:
         cls = getattr(tdkit.learners, name)
-        agent = cls(S, A, gamma=0.9, step_size=0.3, seed=4, **_extra_kwargs(name))
+        agent = cls(S, A, step_size=0.3, seed=4, **_gamma(name), **_extra_kwargs(name))
         drive(agent, 300, seed=1)
         path = tmp_path_factory.mktemp("base") / f"{name}.npz"
         tdkit.save(agent, path)
@@ -104,9 +110,11 @@ def reference(meta: dict, arrays: dict):
     for name, kind in saved_fields(cls).items():
         if f"state/{name}" in arrays:
             np.copyto(getattr(agent, name), arrays[f"state/{name}"])
-        elif kind == "commitment":
+        elif kind in ("commitment", "held_transition"):
             value = meta["scalars"][name]
             setattr(agent, name, None if value is None else tuple(value))
+        elif kind == "mask":
+            setattr(agent, name, np.array(meta["scalars"][name]))
         elif kind == "mask_map":
             setattr(agent, name, {s: np.array(m) for s, m in meta["scalars"][name]})
         elif name in meta["scalars"]:
@@ -436,7 +444,7 @@ def test_the_declared_state_covers_every_learned_attribute(name, tmp_path):
     # A new attribute of learned state that is not declared would silently not be saved:
     # compare every instance attribute of a trained learner with its loaded copy.
     cls = getattr(tdkit.learners, name)
-    agent = cls(S, A, gamma=0.9, step_size=0.3, seed=4, **_extra_kwargs(name))
+    agent = cls(S, A, step_size=0.3, seed=4, **_gamma(name), **_extra_kwargs(name))
     drive(agent, 300, seed=1)
     again = tdkit.load(tdkit.save(agent, tmp_path / "a.npz"))
     if hasattr(agent, "_order"):  # a counter read by saving: compare after both are read

@@ -110,7 +110,8 @@ class TabularAgent:
     #: subclasses declare only their own fields (see :mod:`tdkit.store` for the kinds).
     _saved_state: ClassVar[tuple[tuple[str, str], ...]] = (
         ("_q", "values"), ("_visits", "counts"), ("steps_", "counter"),
-        ("episodes_", "counter"), ("_pending", "per_episode"),
+        ("episodes_", "counter"), ("_steps_at_episode_end", "counter"),
+        ("_pending", "per_episode"),
     )
 
     def __init__(

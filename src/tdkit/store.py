@@ -28,6 +28,9 @@ kind                      content and check on loading
 ``counter``               an integer >= 0
 ``real``                  a finite float
 ``commitment``            None or ``(state, action, bool)`` with both indices in range
+``held_transition``       None or ``(state, action, reward)``: indices in range, finite reward
+``state_or_minus_one``    a state index, or -1 for none
+``mask``                  a boolean array over actions allowing at least one
 ``mask_map``              ``{state: boolean mask over actions}``, each allowing an action
 ``per_episode``           not saved: must be empty (or None, or 0) when saving
 ``hooks``                 JSON from ``_get_extra_state()``, given back to
@@ -99,7 +102,8 @@ _ARRAY_KINDS = {
     "counts": ("<i8", 0),
     "state_counts": ("<i8", 1),
 }
-_SCALAR_KINDS = ("counter", "real", "commitment", "mask_map")
+_SCALAR_KINDS = ("counter", "real", "commitment", "mask_map", "mask", "state_or_minus_one",
+                 "held_transition")
 _KINDS = (*_ARRAY_KINDS, *_SCALAR_KINDS, "per_episode", "hooks")
 _ENCODERS = ("state_encoder", "action_encoder")
 
@@ -231,6 +235,12 @@ def _encode_scalar(kind: str, value: Any) -> Any:
         return float(value)
     if kind == "commitment":
         return None if value is None else [int(value[0]), int(value[1]), bool(value[2])]
+    if kind == "held_transition":
+        return None if value is None else [int(value[0]), int(value[1]), float(value[2])]
+    if kind == "state_or_minus_one":
+        return int(value)
+    if kind == "mask":
+        return [bool(x) for x in value]
     # mask_map
     return [[int(s), [bool(x) for x in mask]] for s, mask in value.items()]
 
@@ -350,6 +360,26 @@ def _check_scalar(name: str, kind: str, value: Any, n_states: int, n_actions: in
             field, f"{value!r:.80} is not null or [state, action, true/false] in range.",
         )
         return (value[0], value[1], value[2])
+    if kind == "held_transition":
+        if value is None:
+            return None
+        _require(
+            isinstance(value, list) and len(value) == 3 and _is_int(value[0])
+            and _is_int(value[1]) and 0 <= value[0] < n_states and 0 <= value[1] < n_actions
+            and isinstance(value[2], (int, float)) and not isinstance(value[2], bool)
+            and math.isfinite(value[2]),
+            field, f"{value!r:.80} is not null or [state, action, finite reward] in range.",
+        )
+        return (value[0], value[1], float(value[2]))
+    if kind == "state_or_minus_one":
+        _require(_is_int(value) and -1 <= value < n_states, field,
+                 f"{value!r:.80} is not -1 or a state in [0, {n_states}).")
+        return value
+    if kind == "mask":
+        _require(isinstance(value, list) and len(value) == n_actions
+                 and all(isinstance(x, bool) for x in value) and any(value), field,
+                 f"{value!r:.80} is not a list of {n_actions} booleans allowing an action.")
+        return np.array(value, dtype=bool)
     # mask_map
     _require(isinstance(value, list) and len(value) <= n_states, field,
              f"{value!r:.80} is not a list of [state, mask] pairs.")

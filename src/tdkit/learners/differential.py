@@ -84,6 +84,9 @@ class _AverageReward:
     """
 
     _extra_params: ClassVar[tuple[str, ...]] = ("reward_step_size", "initial_average_reward")
+    _saved_state: ClassVar[tuple[tuple[str, str], ...]] = (
+        ("average_reward", "real"), ("_restart", "held_transition"),
+    )
 
     #: (state, action, reward) of a terminating transition whose bootstrap waits for the
     #: next episode's start state, or None.
@@ -236,6 +239,10 @@ class DifferentialQLearning(_AverageReward, TabularAgent):
     """
 
     _reset_state: int = -1
+
+    _saved_state: ClassVar[tuple[tuple[str, str], ...]] = (
+        ("_reset_mask", "mask"), ("_reset_state", "state_or_minus_one"),
+    )
 
     def __init__(
         self,
