@@ -972,9 +972,18 @@ def load_checkpoint(
                                 meta["history"].get("digest"), max_bytes)
     except StoreError as exc:
         raise StoreError(f"checkpoint {str(path)!r}: {exc}") from None
-    _transfer(source, agent)
+    growing = []  # encoders that index states as they meet them: bring the saved states
     for k in encoders:
-        if saved_params.get(k) is not None:
-            setattr(agent, k, getattr(source, k))
-    agent._check_encoders()
+        mine, saved = getattr(agent, k, None), getattr(source, k, None)
+        if hasattr(mine, "register") and hasattr(saved, "states"):
+            known, restored = list(mine.states), list(saved.states)
+            if restored[:len(known)] != known:
+                raise StoreError(
+                    f"checkpoint {str(path)!r}: the agent's {k} already indexes states the "
+                    "checkpoint does not know in that order; resume with a fresh encoder."
+                )
+            growing.append((mine, restored[len(known):]))
+    _transfer(source, agent)
+    for encoder, new_states in growing:
+        encoder.register(new_states)
     return loop, history
