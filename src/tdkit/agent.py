@@ -456,14 +456,18 @@ class TabularAgent:
         new = q + alpha * delta
         if not math.isfinite(new):
             visits[s, a] -= 1
-            raise InvalidParameterError(
-                f"{type(self).__name__}: the update at step {self.steps_} (state {s}, action "
-                f"{a}, target {float(target)!r}) overflows Q to {float(new)!r}. Rewards and "
-                "values this close to the float limit cannot be learned; rescale the rewards. "
-                "The table was not changed."
-            )
+            self._refuse_overflow(s, a, target, new)
         values[s, a] = new
         return float(delta)
+
+    def _refuse_overflow(self, s: int, a: int, target: float, new: float) -> None:
+        """Raise for an update whose new value is not finite (the caller changed nothing)."""
+        raise InvalidParameterError(
+            f"{type(self).__name__}: the update at step {self.steps_} (state {s}, action {a}, "
+            f"target {float(target)!r}) overflows Q to {float(new)!r}. Rewards and values this "
+            "close to the float limit cannot be learned; rescale the rewards. The table was "
+            "not changed."
+        )
 
     def _count_visit(self, visits: np.ndarray, s: int, a: int) -> float:
         """Increment ``visits[s, a]`` and return the step size for this update."""
