@@ -198,3 +198,56 @@ def test_resuming_into_another_checkpoint_path_writes_the_whole_history_there(tm
                     resume=first, checkpoint=second, checkpoint_every=5)
     _, saved = load_checkpoint(second, tdkit.QLearning(16, 4, seed=0))
     assert saved.to_records() == h.to_records() and len(saved) == 30
+
+
+def test_a_sidecar_shortened_behind_the_runs_back_is_rewritten_whole(tmp_path):
+    path = tmp_path / "run.npz"
+    agent = tdkit.QLearning(2, 2, seed=0)
+    history = filled(30)
+    loop = {"episode": 30, "total_steps": 30, "root_entropy": "1", "root_spawn_key": []}
+    save_checkpoint(path, agent, loop, history)
+    sidecar = tmp_path / "run.npz.history"
+    sidecar.write_bytes(sidecar.read_bytes()[:100])  # someone cut the file
+    history.add_episode(ret=1.0, length=1, end="terminated", td_count=0, td_abs_sum=0.0,
+                        td_abs_max=0.0, seconds=0.0)
+    save_checkpoint(path, agent, {**loop, "episode": 31}, history)
+    _, again = load_checkpoint(path, tdkit.QLearning(2, 2, seed=0))
+    np.testing.assert_array_equal(again.returns, history.returns)
+
+
+def test_max_bytes_must_be_a_positive_integer(tmp_path):
+    path = tdkit.save(tdkit.QLearning(2, 2, seed=0), tmp_path / "a.npz")
+    with pytest.raises(tdkit.InvalidParameterError, match="max_bytes"):
+        tdkit.load(path, max_bytes="lots")
+
+
+@pytest.mark.parametrize(
+    ("section", "key", "value", "named"),
+    [
+        ("loop", "episode", -1, "loop.episode"),
+        ("loop", "total_steps", 2.5, "loop.total_steps"),
+        ("loop", "root_entropy", "abc", "loop.root_entropy"),
+        ("loop", "root_spawn_key", [-1], "loop.root_spawn_key"),
+        ("history", "rows", 10**12, "history.rows"),
+        ("history", "rows", 31, "truncated"),
+        ("history", "digest", "0" * 64, "SHA-256"),
+    ],
+)
+def test_edited_checkpoint_positions_are_store_errors_naming_the_field(
+        tmp_path, section, key, value, named):
+    import json
+
+    path = tmp_path / "run.npz"
+    tdkit.train(tdkit.QLearning(16, 4, seed=0), "FrozenLake-v1", episodes=30, seed=0,
+                checkpoint=path, checkpoint_every=10)
+    with np.load(path) as archive:
+        contents = {k: archive[k] for k in archive.files}
+    meta = json.loads(contents["meta"].tobytes())
+    meta[section][key] = value
+    contents["meta"] = np.frombuffer(json.dumps(meta).encode(), dtype=np.uint8)
+    np.savez(path, **contents)  # the metadata carries no digest of its own
+    agent = tdkit.QLearning(16, 4, seed=0)
+    before = agent.table.copy()
+    with pytest.raises(StoreError, match=named):
+        load_checkpoint(path, agent)
+    np.testing.assert_array_equal(agent.table, before)

@@ -532,6 +532,10 @@ def _read_archive(path: Path, max_bytes: int) -> dict[str, np.ndarray]:
 
 def _read(path: str | os.PathLike[str], fmt: str,
           max_bytes: int) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+    if not _is_int(max_bytes) or max_bytes < 1:
+        raise InvalidParameterError(
+            f"max_bytes must be a positive integer (bytes); got {max_bytes!r}."
+        )
     path = Path(path)
     if not path.exists():
         raise StoreError(f"no such file: {str(path)!r}.")
@@ -615,7 +619,7 @@ def _check_sizes(cls: type, meta: dict[str, Any], arrays: dict[str, np.ndarray],
         elif key.startswith("param/"):
             _require(params.get(key[6:]) == {"__array__": key}, key,
                      "is not referenced by the parameters; refused.")
-        elif not key.startswith("history/"):
+        else:
             raise StoreError(f"{key}: unknown entry; refused.")
     needed = sum(int(a.nbytes) for a in arrays.values())
     for key in sorted(declared):
@@ -848,7 +852,8 @@ def _append_history(path: Path, history: History) -> tuple[int, bytes]:
     sidecar = _history_path(path)
     known = _persisted.get(history)
     n = len(history)
-    if known is not None and known[0] == sidecar and known[1] <= n and sidecar.exists():
+    if (known is not None and known[0] == sidecar and known[1] <= n and sidecar.exists()
+            and sidecar.stat().st_size >= len(_HISTORY_MAGIC) + known[1] * ROW_BYTES):
         _, done, digest = known
         new = _rows_bytes(history, done)
         with open(sidecar, "r+b") as handle:
@@ -966,8 +971,7 @@ def load_checkpoint(
     _refuse_busy(agent, path)
     try:
         loop = _check_loop_state(meta["loop"])
-        source = _build(meta, {k: v for k, v in arrays.items() if not k.startswith("history/")},
-                        {type(agent).__name__: type(agent)}, max_bytes)
+        source = _build(meta, arrays, {type(agent).__name__: type(agent)}, max_bytes)
         history = _read_history(path, meta["history"].get("rows"),
                                 meta["history"].get("digest"), max_bytes)
     except StoreError as exc:
