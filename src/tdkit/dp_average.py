@@ -205,6 +205,8 @@ def relative_value_iteration(
     ref = _check_state(owner, mdp, reference_state)
     tau = _APERIODICITY
     rewards = mdp.R
+    if mdp.masks is not None:  # masked actions never enter the max (their q is -inf)
+        rewards = np.where(mdp.masks, rewards, -np.inf)
     w = np.zeros(mdp.n_states)
     span = np.inf
     for iteration in range(1, max_iterations + 1):
@@ -278,6 +280,12 @@ def _policy_matrix(owner: str, mdp: FiniteMDP, policy: Any) -> np.ndarray:
         raise InvalidParameterError(
             f"{owner}: policy probabilities must be finite and >= 0; got {policy!r:.80}."
         )
+    if mdp.masks is not None and (probs[~mdp.masks] > 0).any():
+        s, a = (int(i) for i in np.argwhere((probs > 0) & ~mdp.masks)[0])
+        raise InvalidParameterError(
+            f"{owner}: the policy takes action {a} in state {s}, which the model's masks "
+            "forbid (masked); give masked actions probability 0."
+        )
     sums = probs.sum(axis=1)
     off = ~mdp.terminal & (np.abs(sums - 1.0) > 1e-8)
     if off.any():
@@ -347,6 +355,12 @@ def policy_gain(mdp: FiniteMDP, policy: Any) -> float:
     InvalidParameterError
         If the policy is malformed, or its chain has more than one closed
         class (multichain), in which case no single gain exists.
+
+    Notes
+    -----
+    The chain is built densely (``S x S``) and solved directly, which suits
+    models up to a few thousand states; :func:`relative_value_iteration`
+    works through ``mdp.expected_next`` and handles the sparse large ones.
 
     References
     ----------
