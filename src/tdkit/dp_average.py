@@ -269,7 +269,7 @@ def _policy_matrix(owner: str, mdp: FiniteMDP, policy: Any) -> np.ndarray:
             )
         probs = np.zeros((n, m))
         probs[np.arange(n), array] = 1.0
-        return probs
+        return _allowed_only(owner, mdp, probs)
     if array.shape != (n, m):
         raise InvalidParameterError(
             f"{owner}: policy must be ({n},) action indices or ({n}, {m}) probabilities; got "
@@ -280,18 +280,23 @@ def _policy_matrix(owner: str, mdp: FiniteMDP, policy: Any) -> np.ndarray:
         raise InvalidParameterError(
             f"{owner}: policy probabilities must be finite and >= 0; got {policy!r:.80}."
         )
-    if mdp.masks is not None and (probs[~mdp.masks] > 0).any():
-        s, a = (int(i) for i in np.argwhere((probs > 0) & ~mdp.masks)[0])
-        raise InvalidParameterError(
-            f"{owner}: the policy takes action {a} in state {s}, which the model's masks "
-            "forbid (masked); give masked actions probability 0."
-        )
     sums = probs.sum(axis=1)
     off = ~mdp.terminal & (np.abs(sums - 1.0) > 1e-8)
     if off.any():
         s = int(np.argmax(off))
         raise InvalidParameterError(
             f"{owner}: policy row {s} sums to {float(sums[s])!r}; every row must sum to 1."
+        )
+    return _allowed_only(owner, mdp, probs)
+
+
+def _allowed_only(owner: str, mdp: FiniteMDP, probs: np.ndarray) -> np.ndarray:
+    """Refuse a policy that gives an action masked by the model positive probability."""
+    if mdp.masks is not None and (probs[~mdp.masks] > 0).any():
+        s, a = (int(i) for i in np.argwhere((probs > 0) & ~mdp.masks)[0])
+        raise InvalidParameterError(
+            f"{owner}: the policy takes action {a} in state {s}, which the model's masks "
+            "forbid (masked); give masked actions probability 0."
         )
     return probs
 
