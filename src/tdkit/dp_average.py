@@ -45,7 +45,7 @@ from typing import Any
 import numpy as np
 
 from ._errors import InvalidParameterError
-from ._validation import check_in_range, check_positive_int
+from ._validation import require_in_range, require_positive_int
 from .envs.finite import FiniteMDP
 
 __all__ = ["AverageSolution", "policy_gain", "relative_value_iteration"]
@@ -200,8 +200,8 @@ def relative_value_iteration(
     """
     owner = "relative_value_iteration"
     mdp = _check_mdp(owner, mdp)
-    tol = check_in_range(owner, "tol", tol, 0.0, np.inf, low_open=True, high_open=True)
-    max_iterations = check_positive_int(owner, "max_iterations", max_iterations)
+    tol = require_in_range(owner, "tol", tol, 0.0, np.inf, low_open=True, high_open=True)
+    max_iterations = require_positive_int(owner, "max_iterations", max_iterations)
     ref = _check_state(owner, mdp, reference_state)
     tau = _APERIODICITY
     rewards = mdp.R

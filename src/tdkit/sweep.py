@@ -67,7 +67,7 @@ from ._runs import (
     run_seeds,
     seeded_run,
 )
-from ._validation import check_positive_int
+from ._validation import require_positive_int
 from .history import History
 
 __all__ = [
@@ -374,13 +374,13 @@ def run_sweep(
             "got neither."
         )
     if episodes is not None:
-        episodes = check_positive_int(owner, "episodes", episodes)
+        episodes = require_positive_int(owner, "episodes", episodes)
     if steps is not None:
-        steps = check_positive_int(owner, "steps", steps)
+        steps = require_positive_int(owner, "steps", steps)
     if max_episode_steps is not None:
-        max_episode_steps = check_positive_int(owner, "max_episode_steps", max_episode_steps)
-    eval_episodes = check_positive_int(owner, "eval_episodes", eval_episodes, minimum=0)
-    final_episodes = check_positive_int(owner, "final_episodes", final_episodes)
+        max_episode_steps = require_positive_int(owner, "max_episode_steps", max_episode_steps)
+    eval_episodes = require_positive_int(owner, "eval_episodes", eval_episodes, minimum=0)
+    final_episodes = require_positive_int(owner, "final_episodes", final_episodes)
     tasks = [(index, setting, seed) for index, setting in enumerate(setting_list)
              for seed in seed_list]
     if executor is not None:
@@ -392,7 +392,7 @@ def run_sweep(
             )
         workers = 0
     else:
-        workers = _default_workers() if max_workers is None else check_positive_int(
+        workers = _default_workers() if max_workers is None else require_positive_int(
             owner, "max_workers", max_workers
         )
         workers = min(workers, len(tasks))

@@ -14,7 +14,7 @@ import os
 import numpy as np
 
 from ._errors import CapacityError, InvalidParameterError
-from ._validation import check_positive_int
+from ._validation import require_positive_int
 
 __all__ = ["ActionValueTable", "InitialValue", "available_memory", "initial_values",
            "require_capacity"]
@@ -146,8 +146,8 @@ class ActionValueTable:
         rng: np.random.Generator,
         owner: str = "ActionValueTable",
     ) -> None:
-        n_states = check_positive_int(owner, "n_states", n_states)
-        n_actions = check_positive_int(owner, "n_actions", n_actions)
+        n_states = require_positive_int(owner, "n_states", n_states)
+        n_actions = require_positive_int(owner, "n_actions", n_actions)
         require_capacity(owner, (n_states, n_actions), 16)  # values and visits
         self.values = initial_values((n_states, n_actions), initial_value, rng, owner=owner)
         self.visits = np.zeros((n_states, n_actions), dtype=np.int64)
