@@ -175,4 +175,4 @@ def access_control_env(
     (True, False, False)
     """
     mdp = access_control(n_servers=n_servers, payments=payments, p_free=p_free)
-    return mdp.to_env(max_steps=max_steps)
+    return mdp.to_env(max_episode_steps=max_steps)
