@@ -255,7 +255,7 @@ def _checkpoint(
         "root_entropy": str(root.entropy),
         "root_spawn_key": list(root.spawn_key),
     }
-    save_checkpoint(path, agent, loop_state, history.to_arrays())
+    save_checkpoint(path, agent, loop_state, history)
 
 
 def _resume(
@@ -263,7 +263,7 @@ def _resume(
 ) -> tuple[np.random.SeedSequence, int, int, History]:
     from .store import load_checkpoint
 
-    loop_state, history_arrays = load_checkpoint(path, agent)
+    loop_state, history = load_checkpoint(path, agent)
     saved_root = np.random.SeedSequence(
         int(loop_state["root_entropy"]), spawn_key=tuple(loop_state["root_spawn_key"])
     )
@@ -275,8 +275,7 @@ def _resume(
             f"seed={seed!r}; pass the original seed or seed=None to continue it."
         )
     return (
-        saved_root, int(loop_state["episode"]), int(loop_state["total_steps"]),
-        History.from_arrays(history_arrays),
+        saved_root, int(loop_state["episode"]), int(loop_state["total_steps"]), history,
     )
 
 

@@ -2,320 +2,110 @@
 
 A file is a numpy ``.npz`` archive holding the learner's arrays and one entry
 ``meta``: UTF-8 JSON with the format name and version, the learner's class and
-constructor arguments, its counters and random-generator state, and a SHA-256
-digest of every array. Files are written atomically (a temporary file in the
-same folder, then :func:`os.replace`), so a crash never leaves a half-written
-file under the real name, and loaded with ``allow_pickle=False``, so a file
-cannot run code. A foreign, truncated or tampered file raises
-:class:`tdkit.StoreError`; nothing is changed when loading fails.
+constructor arguments, its declared counters and random-generator state, and
+a SHA-256 digest of every array. Files are written atomically (a temporary
+file in the same folder, then :func:`os.replace`); temporaries left behind by
+a killed process are removed by the next write to the same path. Files are
+read with ``allow_pickle=False``, so a file cannot run code.
 
 What is saved
 -------------
-Every ``numpy.ndarray`` attribute of the learner (tables, visit counts,
-models), its scalar attributes (counters, committed actions), its generator
-state, and its constructor arguments (schedules, exploration rules and
-encoders through their ``describe()``). Learners with other internal
-containers (planning models, priority queues) provide
-``_get_extra_state() -> dict`` and ``_set_extra_state(dict)`` with
-JSON-serialisable content. Per-episode containers (multi-step buffers,
-eligibility traces) are empty between episodes and saved as such; saving in
-the middle of an episode, or with transitions observed but not yet applied,
-raises :class:`tdkit.StoreError`.
+Only what the learner's class *declares* as its saved state: each class
+lists its own fields in ``_saved_state``, a tuple of ``(attribute, kind)``
+pairs, and the store collects them along the class hierarchy (a subclass may
+redeclare a field of its base). Everything else is rebuilt by the
+constructor from the saved constructor arguments (schedules, exploration
+rules and encoders through their ``describe()``). The kinds are:
+
+========================  ==============================================================
+kind                      content and check on loading
+========================  ==============================================================
+``values``                float64 array ``(n_states, n_actions)``, every entry finite
+``state_values``          float64 array ``(n_states, 1)``, every entry finite
+``counts``                int64 array ``(n_states, n_actions)``, every entry >= 0
+``state_counts``          int64 array ``(n_states, 1)``, every entry >= 0
+``counts<=FIELD``         as ``counts``, and no entry above the counter ``FIELD``
+``counter``               an integer >= 0
+``real``                  a finite float
+``commitment``            None or ``(state, action, bool)`` with both indices in range
+``held_transition``       None or ``(state, action, reward)``: indices in range, finite reward
+``state_or_minus_one``    a state index, or -1 for none
+``mask``                  a boolean array over actions allowing at least one
+``mask_map``              ``{state: boolean mask over actions}``, each allowing an action
+``per_episode``           not saved: must be empty (or None, or 0) when saving
+``hooks``                 JSON from ``_get_extra_state()``, given back to
+                          ``_set_extra_state()``; its errors become StoreError
+========================  ==============================================================
+
+Saving in the middle of an episode (a ``per_episode`` field not empty, such
+as transitions observed but not yet applied, a multi-step buffer or
+eligibility traces) raises :class:`tdkit.StoreError`.
+
+What loading guarantees
+-----------------------
+The digests detect *corruption* (a truncated copy, a flipped bit); they do
+not detect a deliberate edit, since anyone can recompute them. Loading
+therefore does not trust the content either: before anything is allocated,
+every array's dtype and shape (from its header) and the table size implied
+by ``n_states`` and ``n_actions`` are checked against the declared kinds and
+against ``max_bytes``; JSON nesting is bounded; then every value is checked
+against its kind, the generator state against the generator's own format,
+and only declared fields are applied. Any failure is a
+:class:`tdkit.StoreError` naming the field, raised before the learner (or
+the agent passed to :func:`load_state_into` / :func:`load_checkpoint`) is
+changed. A file that loads gives a learner whose state is exactly what the
+file declares, and whose behaviour follows from that state and the
+constructor arguments alone.
 """
 
 from __future__ import annotations
 
-import collections
-import hashlib
-import io
-import json
 import os
-import tempfile
 from pathlib import Path
 from typing import Any
 
-import numpy as np
-
 from ._errors import StoreError
+from ._store_files import (
+    DEFAULT_MAX_BYTES,
+    FORMAT_AGENT,
+    FORMAT_CHECKPOINT,
+    is_int,
+    read,
+    require,
+    write,
+)
+from ._store_history import append_history, read_history
+from ._store_state import (
+    ENCODERS,
+    agent_state,
+    build,
+    encode_param,
+    encoder_shape,
+    refuse_busy,
+    saved_fields,
+    transfer,
+)
+from .history import History
 
-__all__ = ["load", "load_checkpoint", "load_state_into", "save", "save_checkpoint"]
-
-FORMAT_AGENT = "tdkit-agent"
-FORMAT_CHECKPOINT = "tdkit-checkpoint"
-FORMAT_VERSION = 1
-
-# Containers of per-episode state; they are empty between episodes.
-_CONTAINERS = (collections.deque, dict, list, set)
-
-# Instance attributes that are rebuilt from the constructor, not saved.
-_REBUILT = {"_encode", "_action_index", "_env_action", "_step_size", "_explore", "_rng",
-            "_pending", "_alpha_const"}
-
-
-# ----------------------------------------------------------------- encoding
-def _encode_param(name: str, value: Any, arrays: dict[str, np.ndarray]) -> Any:
-    from .exploration import Exploration
-    from .schedules import Schedule
-
-    if value is None or isinstance(value, (bool, int, float, str)):
-        return value
-    if isinstance(value, np.integer):
-        return int(value)
-    if isinstance(value, np.floating):
-        return float(value)
-    if isinstance(value, tuple) and all(isinstance(v, (int, float)) for v in value):
-        return {"__tuple__": list(value)}
-    if isinstance(value, Schedule):
-        return {"__schedule__": value.describe()}
-    if isinstance(value, Exploration):
-        return {"__exploration__": value.describe()}
-    if isinstance(value, np.ndarray):
-        key = f"param/{name}"
-        arrays[key] = value
-        return {"__array__": key}
-    if isinstance(value, np.random.Generator):
-        return None  # the generator's state is saved separately
-    if hasattr(value, "describe") and hasattr(value, "encode"):
-        return {"__encoder__": value.describe()}
-    raise StoreError(
-        f"cannot save parameter {name}={value!r} of type {type(value).__name__}: only numbers, "
-        "strings, tuples of numbers, arrays, schedules, exploration rules and tdkit encoders "
-        "can be stored. Use one of those (e.g. a probability table instead of a callable)."
-    )
+__all__ = [
+    "DEFAULT_MAX_BYTES",
+    "load",
+    "load_checkpoint",
+    "load_state_into",
+    "save",
+    "save_checkpoint",
+    "saved_fields",
+]
 
 
-def _encoder_shape(encoded: dict[str, Any]) -> dict[str, Any]:
-    """An encoder's description without the states a growing index has collected."""
-    return {k: v for k, v in encoded["__encoder__"].items() if k != "states"}
-
-
-def _decode_param(value: Any, arrays: Any) -> Any:
-    from .encoders import from_description
-    from .exploration import exploration_from_description
-    from .schedules import schedule_from_description
-
-    if not isinstance(value, dict):
-        return value
-    if "__tuple__" in value:
-        return tuple(value["__tuple__"])
-    if "__schedule__" in value:
-        return schedule_from_description(value["__schedule__"])
-    if "__exploration__" in value:
-        return exploration_from_description(value["__exploration__"])
-    if "__array__" in value:
-        return np.array(arrays[value["__array__"]])
-    if "__encoder__" in value:
-        return from_description(value["__encoder__"])
-    raise StoreError(f"unknown parameter encoding {value!r} in file.")
-
-
-def _scalar_json(value: Any) -> Any:
-    if value is None or isinstance(value, (bool, int, float, str)):
-        return value
-    if isinstance(value, (np.integer, np.bool_)):
-        return value.item()
-    if isinstance(value, np.floating):
-        return float(value)
-    if isinstance(value, tuple) and all(
-        v is None or isinstance(v, (bool, int, float, np.integer, np.bool_)) for v in value
-    ):
-        return {"__tuple__": [_scalar_json(v) for v in value]}
-    raise TypeError
-
-
-def _scalar_from_json(value: Any) -> Any:
-    if isinstance(value, dict) and "__tuple__" in value:
-        return tuple(value["__tuple__"])
-    return value
-
-
-def _agent_state(agent: Any) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
-    """(meta, arrays) describing ``agent`` completely."""
-    if getattr(agent, "_pending", None):
-        raise StoreError(
-            f"cannot save {type(agent).__name__}: {len(agent._pending)} observed transition(s) "
-            "are not applied yet. Call update() first."
-        )
-    if not hasattr(agent, "get_params"):
-        raise StoreError(
-            f"cannot save {type(agent).__name__}: tdkit.save stores tdkit learners (objects with "
-            "get_params()); save your own agent's state yourself."
-        )
-    arrays: dict[str, np.ndarray] = {}
-    params = {k: _encode_param(k, v, arrays) for k, v in agent.get_params().items()}
-    scalars: dict[str, Any] = {}
-    extra = agent._get_extra_state() if hasattr(agent, "_get_extra_state") else None
-    handled = set(getattr(agent, "_extra_state_attributes", ()))
-    for name, value in vars(agent).items():
-        if name in _REBUILT or name in handled or (not name.startswith("_") and name in params):
-            continue
-        if isinstance(value, np.ndarray):
-            arrays[f"state/{name}"] = value
-            continue
-        if isinstance(value, _CONTAINERS):
-            if value:
-                raise StoreError(
-                    f"cannot save {type(agent).__name__} in the middle of an episode: "
-                    f"{name!r} holds {len(value)} item(s) of per-episode state (a multi-step "
-                    "buffer or eligibility traces). Save after an episode has ended."
-                )
-            scalars[name] = {"__empty__": type(value).__name__}
-            continue
-        if callable(value):
-            continue  # functions and bound methods are rebuilt by the constructor
-        try:
-            scalars[name] = _scalar_json(value)
-        except TypeError:
-            raise StoreError(
-                f"cannot save {type(agent).__name__}: attribute {name!r} holds a "
-                f"{type(value).__name__}, which tdkit.save does not know how to store. The "
-                "learner must provide _get_extra_state/_set_extra_state for it."
-            ) from None
-    meta = {
-        "class": type(agent).__name__,
-        "params": params,
-        "scalars": scalars,
-        "rng": agent.rng.bit_generator.state,
-        "extra": extra,
-    }
-    return meta, arrays
-
-
-def _apply_state(agent: Any, meta: dict[str, Any], arrays: Any) -> None:
-    """Write saved state into ``agent`` (validated first, then applied)."""
-    updates = {}
-    for key in arrays:
-        if not key.startswith("state/"):
-            continue
-        name = key[len("state/"):]
-        current = getattr(agent, name, None)
-        saved = arrays[key]
-        if not isinstance(current, np.ndarray) or current.shape != saved.shape or (
-            current.dtype != saved.dtype
-        ):
-            raise StoreError(
-                f"saved array {name!r} (shape {saved.shape}, {saved.dtype}) does not fit this "
-                f"{type(agent).__name__} (has {getattr(current, 'shape', None)}); the file belongs "
-                "to a learner of another shape or version."
-            )
-        updates[name] = saved
-    for name, saved in updates.items():
-        np.copyto(getattr(agent, name), saved)
-    for name, value in meta["scalars"].items():
-        if isinstance(value, dict) and "__empty__" in value:
-            getattr(agent, name).clear()
-        else:
-            setattr(agent, name, _scalar_from_json(value))
-    agent.rng.bit_generator.state = meta["rng"]
-    if meta.get("extra") is not None:
-        agent._set_extra_state(meta["extra"])
-
-
-# ----------------------------------------------------------------- files
-def _digest(array: np.ndarray) -> str:
-    arr = np.ascontiguousarray(array)
-    h = hashlib.sha256()
-    h.update(str(arr.dtype).encode())
-    h.update(str(arr.shape).encode())
-    h.update(arr.tobytes())
-    return h.hexdigest()
-
-
-def _write(path: str | os.PathLike[str], fmt: str, meta: dict[str, Any],
-           arrays: dict[str, np.ndarray]) -> Path:
-    path = Path(path)
-    meta = {
-        "format": fmt,
-        "format_version": FORMAT_VERSION,
-        **meta,
-        "digests": {k: _digest(v) for k, v in arrays.items()},
-    }
-    payload = {k: np.ascontiguousarray(v) for k, v in arrays.items()}
-    payload["meta"] = np.frombuffer(json.dumps(meta).encode("utf-8"), dtype=np.uint8)
-    buffer = io.BytesIO()
-    np.savez(buffer, **payload)
-    directory = path.parent if str(path.parent) else Path(".")
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=directory)
-    try:
-        with os.fdopen(fd, "wb") as handle:
-            handle.write(buffer.getvalue())
-            handle.flush()
-            os.fsync(handle.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-    return path
-
-
-def _read(path: str | os.PathLike[str], fmt: str) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
-    path = Path(path)
-    if not path.exists():
-        raise StoreError(f"no such file: {str(path)!r}.")
-    try:
-        with np.load(path, allow_pickle=False) as archive:
-            contents = {k: archive[k] for k in archive.files}
-    except Exception as exc:  # zip, npy header and pickle refusals all land here
-        raise StoreError(
-            f"{str(path)!r} is not a readable tdkit file (truncated, corrupted or of another "
-            f"kind): {type(exc).__name__}: {exc}"
-        ) from None
-    if "meta" not in contents:
-        raise StoreError(f"{str(path)!r} is not a tdkit file: it has no 'meta' entry.")
-    try:
-        meta = json.loads(contents.pop("meta").tobytes().decode("utf-8"))
-    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise StoreError(f"{str(path)!r}: its metadata is not valid JSON ({exc}).") from None
-    if not isinstance(meta, dict) or meta.get("format") != fmt:
-        found = meta.get("format") if isinstance(meta, dict) else None
-        raise StoreError(
-            f"{str(path)!r} holds format {found!r}, expected {fmt!r}."
-            + (" Use tdkit.store.load_checkpoint for checkpoints." if found == FORMAT_CHECKPOINT
-               else "")
-        )
-    if meta.get("format_version") != FORMAT_VERSION:
-        raise StoreError(
-            f"{str(path)!r} has format version {meta.get('format_version')!r}; this tdkit reads "
-            f"version {FORMAT_VERSION}."
-        )
-    digests = meta.get("digests", {})
-    if set(digests) != set(contents):
-        raise StoreError(
-            f"{str(path)!r} was altered: its arrays {sorted(contents)} do not match the recorded "
-            f"list {sorted(digests)}."
-        )
-    for key, array in contents.items():
-        if _digest(array) != digests[key]:
-            raise StoreError(f"{str(path)!r} was altered: array {key!r} fails its SHA-256 check.")
-    return meta, contents
-
-
-def _learner_class(name: str, classes: dict[str, type] | None) -> type:
-    from . import learners
-
-    table = {n: getattr(learners, n) for n in learners.__all__}
-    table.update(classes or {})
-    if name not in table:
-        raise StoreError(
-            f"the file holds a {name!r}, which is not a tdkit learner; pass "
-            f"classes={{{name!r}: YourClass}} to load it."
-        )
-    return table[name]
-
-
-def _build(meta: dict[str, Any], arrays: dict[str, np.ndarray],
-           classes: dict[str, type] | None) -> Any:
-    cls = _learner_class(meta["class"], classes)
-    params = {k: _decode_param(v, arrays) for k, v in meta["params"].items()}
-    agent = cls(**params)
-    _apply_state(agent, meta, arrays)
-    return agent
-
-
-# ----------------------------------------------------------------- public
 def save(agent: Any, path: str | os.PathLike[str]) -> Path:
-    """Save a tdkit learner to ``path`` (an ``.npz`` file), atomically.
+    """Save a tdkit learner's declared state to ``path`` (an ``.npz`` file), atomically.
+
+    Raises
+    ------
+    tdkit.StoreError
+        If the learner is in the middle of an episode or a parameter cannot be
+        stored (a callable policy, for example).
 
     Examples
     --------
@@ -328,11 +118,12 @@ def save(agent: Any, path: str | os.PathLike[str]) -> Path:
     >>> bool((again.table == agent.table).all()), again.act(0) == agent.act(0)
     (True, True)
     """
-    meta, arrays = _agent_state(agent)
-    return _write(path, FORMAT_AGENT, meta, arrays)
+    meta, arrays = agent_state(agent)
+    return write(path, FORMAT_AGENT, meta, arrays)
 
 
-def load(path: str | os.PathLike[str], *, classes: dict[str, type] | None = None) -> Any:
+def load(path: str | os.PathLike[str], *, classes: dict[str, type] | None = None,
+         max_bytes: int = DEFAULT_MAX_BYTES) -> Any:
     """Load a learner saved by :func:`save`.
 
     Parameters
@@ -340,76 +131,130 @@ def load(path: str | os.PathLike[str], *, classes: dict[str, type] | None = None
     path : path-like
     classes : dict, optional
         Extra learner classes by name, for subclasses defined outside tdkit.
+    max_bytes : int, default 2**31
+        Refuse a file whose arrays, or the tables its parameters imply, need
+        more bytes than this (checked before anything is allocated).
 
     Raises
     ------
     tdkit.StoreError
-        If the file is missing, foreign, truncated, tampered with, or of
-        another format version.
+        If the file is missing, foreign, truncated, corrupted, of another
+        format version, or holds anything outside the learner's declared
+        state and its checks (the message names the field).
     """
-    meta, arrays = _read(path, FORMAT_AGENT)
-    return _build(meta, arrays, classes)
+    meta, arrays = read(path, FORMAT_AGENT, max_bytes)
+    try:
+        return build(meta, arrays, classes, max_bytes)
+    except StoreError as exc:
+        raise StoreError(f"{str(path)!r}: {exc}") from None
 
 
-def load_state_into(agent: Any, path: str | os.PathLike[str]) -> None:
+def load_state_into(agent: Any, path: str | os.PathLike[str], *,
+                    max_bytes: int = DEFAULT_MAX_BYTES) -> None:
     """Overwrite ``agent``'s learned state with the one saved at ``path``.
 
-    The saved learner must be of the same class and shape.
+    The saved learner must be of the same class and shape, and ``agent``
+    must not be in the middle of an episode. Nothing changes if loading fails.
     """
-    meta, arrays = _read(path, FORMAT_AGENT)
+    meta, arrays = read(path, FORMAT_AGENT, max_bytes)
     if meta["class"] != type(agent).__name__:
         raise StoreError(
-            f"{str(path)!r} holds a {meta['class']}, not a {type(agent).__name__}."
+            f"{str(path)!r} holds a {meta['class']!r:.80}, not a {type(agent).__name__}."
         )
-    _apply_state(agent, meta, arrays)
+    refuse_busy(agent, path)
+    try:
+        source = build(meta, arrays, {type(agent).__name__: type(agent)}, max_bytes)
+    except StoreError as exc:
+        raise StoreError(f"{str(path)!r}: {exc}") from None
+    transfer(source, agent)
 
 
 def save_checkpoint(
-    path: str | os.PathLike[str], agent: Any, loop_state: dict[str, Any],
-    history_arrays: dict[str, np.ndarray],
+    path: str | os.PathLike[str], agent: Any, loop_state: dict[str, Any], history: History,
 ) -> Path:
-    """Write a training checkpoint: the learner, the loop's position and the History."""
-    meta, arrays = _agent_state(agent)
+    """Write a training checkpoint: the learner, the loop's position and the History.
+
+    The History goes to a sidecar file ``<path>.history`` to which each
+    checkpoint of the same run only *appends* the episodes recorded since
+    the previous one, so the bytes written per checkpoint do not grow with
+    the number of episodes. The learner file is written atomically after the
+    rows, and records how many rows belong to it and their chained digest.
+    """
+    path = Path(path)
+    meta, arrays = agent_state(agent)
+    rows, digest = append_history(path, history)
     meta["loop"] = loop_state
-    for key, value in history_arrays.items():
-        arrays[f"history/{key}"] = value
-    return _write(path, FORMAT_CHECKPOINT, meta, arrays)
+    meta["history"] = {"rows": rows, "digest": digest.hex()}
+    return write(path, FORMAT_CHECKPOINT, meta, arrays)
+
+
+def _check_loop_state(loop: dict[str, Any]) -> dict[str, Any]:
+    for key in ("episode", "total_steps"):
+        require(is_int(loop.get(key)) and loop[key] >= 0, f"loop.{key}",
+                 f"{loop.get(key)!r:.80} is not an integer >= 0.")
+    entropy = loop.get("root_entropy")
+    require(isinstance(entropy, str) and entropy.isdigit() and len(entropy) <= 80,
+             "loop.root_entropy", f"{entropy!r:.80} is not a decimal integer.")
+    key = loop.get("root_spawn_key")
+    require(isinstance(key, list) and len(key) <= 64
+             and all(is_int(k) and 0 <= k < 2**64 for k in key), "loop.root_spawn_key",
+             f"{key!r:.80} is not a list of integers in [0, 2**64).")
+    return loop
 
 
 def load_checkpoint(
-    path: str | os.PathLike[str], agent: Any
-) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
-    """Restore ``agent`` from a checkpoint; return (loop_state, history_arrays)."""
-    meta, arrays = _read(path, FORMAT_CHECKPOINT)
+    path: str | os.PathLike[str], agent: Any, *, max_bytes: int = DEFAULT_MAX_BYTES
+) -> tuple[dict[str, Any], History]:
+    """Restore ``agent`` from a checkpoint; return ``(loop_state, history)``.
+
+    ``agent`` must be of the saved class, built with the same
+    hyper-parameters, and not in the middle of an episode. Nothing changes
+    if loading fails.
+    """
+    path = Path(path)
+    meta, arrays = read(path, FORMAT_CHECKPOINT, max_bytes)
     if meta["class"] != type(agent).__name__:
         raise StoreError(
-            f"checkpoint {str(path)!r} was written by a {meta['class']}, but the agent to "
-            f"resume is a {type(agent).__name__}."
+            f"checkpoint {str(path)!r} was written by a {meta['class']!r:.80}, but the agent "
+            f"to resume is a {type(agent).__name__}."
         )
     saved_params = meta["params"]
-    current: dict[str, np.ndarray] = {}
-    now = {k: _encode_param(k, v, current) for k, v in agent.get_params().items()}
-    encoders = ("state_encoder", "action_encoder")
+    current: dict[str, Any] = {}
+    now = {k: encode_param(k, v, current) for k, v in agent.get_params().items()}
+    encoders = ENCODERS
     differing = sorted(
-        k for k in now
-        if k not in ("seed", *encoders) and now[k] != saved_params.get(k)
-        and not (isinstance(now[k], dict) and "__array__" in now[k])
+        k for k in set(now) | set(saved_params)
+        if k not in ("seed", *encoders) and now.get(k) != saved_params.get(k)
+        and not (isinstance(now.get(k), dict) and "__array__" in now[k])
     )
     for k in encoders:  # same kind and size; a growing index brings its saved states
-        mine, saved = now.get(k), saved_params.get(k)
-        if (mine is None) != (saved is None) or (
-            mine is not None and _encoder_shape(mine) != _encoder_shape(saved)
-        ):
+        if encoder_shape(now.get(k)) != encoder_shape(saved_params.get(k)):
             differing.append(k)
     if differing:
         raise StoreError(
             f"checkpoint {str(path)!r} was written with other hyper-parameters "
             f"({', '.join(differing)}); resume with the agent configured as before."
         )
-    _apply_state(agent, meta, {k: v for k, v in arrays.items() if k.startswith("state/")})
+    refuse_busy(agent, path)
+    try:
+        loop = _check_loop_state(meta["loop"])
+        source = build(meta, arrays, {type(agent).__name__: type(agent)}, max_bytes)
+        history = read_history(path, meta["history"].get("rows"),
+                                meta["history"].get("digest"), max_bytes)
+    except StoreError as exc:
+        raise StoreError(f"checkpoint {str(path)!r}: {exc}") from None
+    growing = []  # encoders that index states as they meet them: bring the saved states
     for k in encoders:
-        if saved_params.get(k) is not None:
-            setattr(agent, k, _decode_param(saved_params[k], arrays))
-    agent._check_encoders()
-    history = {k[len("history/"):]: v for k, v in arrays.items() if k.startswith("history/")}
-    return meta["loop"], history
+        mine, saved = getattr(agent, k, None), getattr(source, k, None)
+        if hasattr(mine, "register") and hasattr(saved, "states"):
+            known, restored = list(mine.states), list(saved.states)
+            if restored[:len(known)] != known:
+                raise StoreError(
+                    f"checkpoint {str(path)!r}: the agent's {k} already indexes states the "
+                    "checkpoint does not know in that order; resume with a fresh encoder."
+                )
+            growing.append((mine, restored[len(known):]))
+    transfer(source, agent)
+    for encoder, new_states in growing:
+        encoder.register(new_states)
+    return loop, history

@@ -21,7 +21,7 @@ References
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Any, ClassVar
 
 import numpy as np
 
@@ -130,6 +130,11 @@ class TraceLearner(TabularAgent):
     override :meth:`_before_step` and :meth:`_column`; the TD error and the
     trace step are computed here, once.
     """
+
+    _saved_state: ClassVar[tuple[tuple[str, str], ...]] = (
+        ("_traces", "per_episode"), ("_q_old", "per_episode"), ("_expect", "per_episode"),
+        ("_mask_now", "per_episode"),
+    )
 
     def __init__(
         self,
