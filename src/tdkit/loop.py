@@ -179,7 +179,7 @@ def train(
             history.add_episode(
                 ret=result.total_reward, length=result.length, end=end,
                 td_count=result.td_count, td_abs_sum=result.td_abs_sum,
-                td_abs_max=result.td_abs_max,
+                td_abs_max=result.td_abs_max, seconds=result.seconds,
             )
             if _log.isEnabledFor(logging.DEBUG):
                 _log.debug(
