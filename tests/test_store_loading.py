@@ -20,9 +20,9 @@ from hypothesis import strategies as st
 
 import tdkit
 from tdkit import StoreError
-from tdkit._store_files import digest as _digest
-from tdkit._store_state import _decode_param, saved_fields
-from tdkit._store_state import encode_param as _encode_param
+from tdkit.runs._store_files import digest as _digest
+from tdkit.runs._store_state import _decode_param, saved_fields
+from tdkit.runs._store_state import encode_param as _encode_param
 
 S, A = 6, 3
 _MASKS = np.array([[True, True, True], [True, False, True], [False, True, True],

@@ -30,9 +30,9 @@ import numpy as np
 from gymnasium.vector.utils import iterate
 
 from .._errors import InvalidParameterError
-from ..history import History
 from .episode import info_mask
 from .fit import check_agent_fits
+from .history import History
 from .seeds import episode_seed, root_sequence
 
 __all__ = ["agent_roots", "train_vector"]

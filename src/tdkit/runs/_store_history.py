@@ -19,7 +19,7 @@ from typing import Any
 
 import numpy as np
 
-from ._errors import StoreError
+from .._errors import StoreError
 from ._store_files import atomic_write, is_int, require
 from .history import COLUMNS, ROW_BYTES, History
 

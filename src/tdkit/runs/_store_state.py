@@ -15,7 +15,7 @@ from typing import Any
 
 import numpy as np
 
-from ._errors import CapacityError, InvalidParameterError, StoreError
+from .._errors import CapacityError, InvalidParameterError, StoreError
 from ._store_files import is_int, require
 
 __all__ = [
@@ -74,8 +74,8 @@ def _base_kind(kind: str) -> str:
 
 
 def encode_param(name: str, value: Any, arrays: dict[str, np.ndarray]) -> Any:
-    from .exploration import Exploration
-    from .schedules import Schedule
+    from ..exploration import Exploration
+    from ..schedules import Schedule
 
     if value is None or isinstance(value, (bool, int, float, str)):
         return value
@@ -112,9 +112,9 @@ def encoder_shape(encoded: Any) -> Any:
 
 
 def _decode_param(name: str, value: Any, arrays: dict[str, np.ndarray]) -> Any:
-    from .encoders import from_description
-    from .exploration import exploration_from_description
-    from .schedules import schedule_from_description
+    from ..encoders import from_description
+    from ..exploration import exploration_from_description
+    from ..schedules import schedule_from_description
 
     if name in ENCODERS and value is not None and not (
         isinstance(value, dict) and set(value) == {"__encoder__"}
@@ -324,7 +324,7 @@ def _set_rng(agent: Any, state: dict[str, Any]) -> None:
 
 
 def _learner_class(name: str, classes: dict[str, type] | None) -> type:
-    from . import learners
+    from .. import learners
 
     table = {n: getattr(learners, n) for n in learners.__all__}
     table.update(classes or {})

@@ -8,7 +8,7 @@ Reading checks every array header (dtype, shape, the bytes stored) against
 ``max_bytes`` before it reads the data, never unpickles, bounds the JSON
 nesting and checks the SHA-256 digest of every array. The digests detect
 corruption, not a deliberate edit: the content is checked by
-:mod:`tdkit._store_state`.
+:mod:`tdkit.runs._store_state`.
 """
 
 from __future__ import annotations
@@ -25,7 +25,7 @@ from typing import Any
 
 import numpy as np
 
-from ._errors import InvalidParameterError, StoreError
+from .._errors import InvalidParameterError, StoreError
 
 __all__ = [
     "DEFAULT_MAX_BYTES",
