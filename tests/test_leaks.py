@@ -66,11 +66,14 @@ def test_temporaries_of_live_processes_and_of_other_files_are_left_alone(tmp_pat
 def _overflow_learners():
     uniform = np.full((2, 1), 1.0)
     special = {"TD0": {"policy": uniform}, "DifferentialTD": {"policy": uniform},
-               "NStepSarsa": {"n": 1}, "TreeBackup": {"n": 1}}
-    # The trace learners apply their updates through the shared trace step, not _td_step.
-    skip = {"SarsaLambda", "WatkinsQLambda", "TDLambda"}
-    return [pytest.param(n, special.get(n, {}), id=n)
-            for n in tdkit.learners.__all__ if n not in skip]
+               "TDLambda": {"policy": uniform}, "NStepSarsa": {"n": 1}, "TreeBackup": {"n": 1}}
+    # The trace learners apply their updates through the shared trace step (every
+    # trace kind), the others through _td_step: both refuse an overflow.
+    params = [pytest.param(n, special.get(n, {}), id=n) for n in tdkit.learners.__all__]
+    params += [pytest.param(n, {"trace": kind, **special.get(n, {})}, id=f"{n}-{kind}")
+               for n in ("SarsaLambda", "WatkinsQLambda", "TDLambda")
+               for kind in ("replacing", "dutch")]
+    return params
 
 
 @pytest.mark.filterwarnings("ignore:overflow encountered:RuntimeWarning")
