@@ -10,7 +10,7 @@ first because every other check relies on it.
 
 How the semantic checks decide
 ------------------------------
-The probe problems (:mod:`tdkit.verify._probes`) are deterministic models in
+The probe problems (:mod:`tdkit.verify.probes`) are deterministic models in
 which a classic bug changes the fixed point by a wide margin, and in which the
 correct fixed point :math:`Q^*` does not depend on the agent's exploration.
 After training, an agent passes when
@@ -62,8 +62,10 @@ from ._driver import (
     run_episodes,
     where,
 )
-from ._probes import (
+from ._report import FAILED, PASSED, SKIPPED, CheckResult
+from .probes import (
     Probe,
+    both_flags_probe,
     discount_probe,
     masks_probe,
     next_action_probe,
@@ -73,20 +75,22 @@ from ._probes import (
     tie_probe,
     truncation_probe,
 )
-from ._report import FAILED, PASSED, SKIPPED, CheckResult
 
 __all__ = [
     "CHECKS",
     "LEVELS",
     "Context",
+    "check_both_flags",
     "check_convergence",
     "check_discounted_returns",
+    "check_episode_boundaries",
     "check_masks",
     "check_next_action",
     "check_numerical_hygiene",
     "check_protocol",
     "check_reproducibility",
     "check_state_encoding",
+    "check_step_size",
     "check_terminal",
     "check_tie_breaking",
     "check_truncation",
@@ -103,6 +107,17 @@ PROBE_EPISODES = 800
 
 GREEDY_CALLS = 5
 """Greedy calls per choice state; random ties show up as disagreeing answers."""
+
+GREEDY_SAMPLES = 100
+"""Greedy calls per value state, each compared with the agent's own q_values.
+
+A greedy call (``explore=False``) must return an action of largest
+``q_values``; this is exact (no false alarm is possible for a correct
+agent). An agent that explores with rate epsilon anyway returns a
+non-greedy action with probability epsilon (A - 1) / A per call (0.05 for
+epsilon = 0.1 and A = 2), so it escapes detection in 100 calls on each of at
+least two value states with probability 0.95^200 < 1e-4.
+"""
 
 TIE_AGENTS = {"quick": 200, "full": 800}
 """Fresh agents asked for a greedy action among tied actions."""
@@ -148,8 +163,10 @@ def _skip(name: str, reason: str) -> CheckResult:
     return CheckResult(name, SKIPPED, reason)
 
 
-def _fault(name: str, fault: AgentFault, seed: int, env: str) -> CheckResult:
-    return CheckResult(name, FAILED, fault.message, seed=seed, env=env, where=fault.where)
+def _fault(name: str, fault: AgentFault, seed: int, env: str,
+           rebuild: str | None = None) -> CheckResult:
+    return CheckResult(name, FAILED, fault.message, seed=seed, env=env, where=fault.where,
+                       rebuild=rebuild)
 
 
 def _tolerance(values: np.ndarray) -> float:
@@ -167,17 +184,45 @@ def _greedy(agent: Any, obs: Any, mask: np.ndarray | None, here: str) -> int:
     return int(action)
 
 
-def _hint(probe: Probe, seen: float, expected: float, bug_value: float | None) -> str:
-    """Name the probe's classic bug when the value seen is closer to its fixed point."""
-    if bug_value is None or not abs(seen - bug_value) < abs(seen - expected):
+def _hint(probe: Probe, seen: float, expected: float, s: int, a: int) -> str:
+    """Name the modelled bug whose fixed point is nearest the value seen (if nearer than Q*)."""
+    best = None
+    for text, bug_q in probe.bugs:
+        value = float(bug_q[s, a])
+        if abs(seen - value) < abs(seen - expected) and (
+            best is None or abs(seen - value) < abs(seen - best[1])
+        ):
+            best = (text, value)
+    if best is None:
         return ""
-    return f"; {probe.bug} converges to {fmt(bug_value)}"
+    return f"; {best[0]} converges to {fmt(best[1])}"
+
+
+def _check_greedy_mode(agent: Any, probe: Probe, states: list[int], rows: np.ndarray,
+                       here: str) -> str | None:
+    """Each greedy call must return an action of largest q_values (see GREEDY_SAMPLES)."""
+    for s, row in zip(states, rows, strict=True):
+        allowed = probe.allowed(s)
+        if allowed.sum() < 2:
+            continue
+        values = np.where(allowed, row, -np.inf)
+        top = values.max()
+        slack = 1e-9 * (1.0 + abs(top))
+        mask = None if probe.masks is None else probe.masks[s].copy()
+        picks = [_greedy(agent, s, mask, here) for _ in range(GREEDY_SAMPLES)]
+        bad = [a for a in picks if not values[a] >= top - slack]
+        if bad:
+            return (
+                f"act({s}, explore=False) returned action {bad[0]} worth {fmt(float(row[bad[0]]))} "
+                f"by the agent's own q_values, below the greedy {fmt(float(top))} ({len(bad)} of "
+                f"{GREEDY_SAMPLES} calls): exploring when explore=False"
+            )
+    return None
 
 
 def _judge(agent: Any, probe: Probe, kind: AgentKind, here: str) -> str | None:
     """Return None if the trained ``agent`` got ``probe`` right, else why not."""
     q = probe.q
-    bug_q = probe.bug_q
     if kind.prediction:
         states = list(probe.value_states)
         expected = q[states, 0]
@@ -185,23 +230,24 @@ def _judge(agent: Any, probe: Probe, kind: AgentKind, here: str) -> str | None:
         tol = _tolerance(expected)
         for s, e, v in zip(states, expected, seen, strict=True):
             if not abs(v - e) <= tol:
-                bug = None if bug_q is None else float(bug_q[s, 0])
                 return (f"V({s}) = {fmt(v)} but the exact value is {fmt(float(e))} ± {tol:g}"
-                        + _hint(probe, v, float(e), bug))
+                        + _hint(probe, v, float(e), s, 0))
         return None
     if kind.q_values:
         states = list(probe.value_states)
         expected = np.array([q[s, probe.optimal_actions(s)[0]] for s in states])
         tol = _tolerance(expected)
         rows = read_q(agent, states, here)
+        explores = _check_greedy_mode(agent, probe, states, rows, here)
+        if explores is not None:
+            return explores
         for s, e, row in zip(states, expected, rows, strict=True):
             best = probe.optimal_actions(s)
             a = int(best[np.argmax(row[best])])
             v = float(row[a])
             if not abs(v - e) <= tol:
-                bug = None if bug_q is None else float(bug_q[s, a])
                 return (f"Q({s}, {a}) = {fmt(v)} but Q* = {fmt(float(e))} ± {tol:g}"
-                        + _hint(probe, v, float(e), bug))
+                        + _hint(probe, v, float(e), s, a))
     for s in probe.choice_states:
         best = probe.optimal_actions(s)
         mask = None if probe.masks is None else probe.masks[s].copy()
@@ -212,10 +258,27 @@ def _judge(agent: Any, probe: Probe, kind: AgentKind, here: str) -> str | None:
                 f"greedy action in state {s} is {wrong[0]} ({len(wrong)} of {GREEDY_CALLS} "
                 f"calls) but the optimal action is {fmt(best.tolist()).strip('[]')}"
             )
-            if bug_q is not None and int(np.argmax(bug_q[s])) == wrong[0]:
-                text += f"; {probe.bug} prefers {wrong[0]} too"
+            for bug, bug_q in probe.bugs:
+                if int(np.argmax(bug_q[s])) == wrong[0]:
+                    text += f"; {bug} prefers {wrong[0]} too"
+                    break
             return text
     return None
+
+
+def rebuild_code(env_code: str, seed: int, episodes: int, max_episode_steps: int | None) -> str:
+    """Code that rebuilds a verifier run through ``tdkit.train`` (see CheckResult.rebuild)."""
+    limit = "" if max_episode_steps is None else f", max_episode_steps={max_episode_steps}"
+    return (
+        f"env = {env_code}; agent = make_agent(env, {seed}); "
+        f"tdkit.train(agent, env, episodes={episodes}, seed={seed}{limit})"
+    )
+
+
+def probe_code(probe: Probe, prediction: bool) -> str:
+    """The expression that builds ``probe``'s environment."""
+    flag = ", prediction=True" if prediction else ""
+    return f'tdkit.verify.probes.get("{probe.name}"{flag}).make_env()'
 
 
 def _probe_check(
@@ -224,9 +287,11 @@ def _probe_check(
     """Train on ``probe`` for each seed of the level and judge the result."""
     for seed in ctx.seeds:
         env = probe.make_env()
+        code = rebuild_code(probe_code(probe, ctx.prediction), seed, episodes, probe.max_steps)
         try:
             agent = build_agent(ctx.make_agent, env, seed)
-            run_episodes(agent, env, episodes=episodes, seed=seed)
+            run_episodes(agent, env, episodes=episodes, seed=seed,
+                         max_episode_steps=probe.max_steps)
             if env.violations:
                 episode, step, s, a = env.violations[0]
                 return _result(
@@ -234,16 +299,16 @@ def _probe_check(
                     f"act chose masked action {a} in state {s} (mask "
                     f"{probe.masks[s].tolist()}); {len(env.violations)} masked choice(s) in "
                     f"{episodes} episodes",
-                    seed=seed, env=probe.name, where=where(episode, step),
+                    seed=seed, env=probe.name, where=where(episode, step), rebuild=code,
                 )
             problem = _judge(agent, probe, ctx.kind, f"after {episodes} episodes")
         except AgentFault as fault:
-            return _fault(name, fault, seed, probe.name)
+            return _fault(name, fault, seed, probe.name, code)
         if problem is not None:
             if "±" in problem:
                 problem += f" (after {episodes} training episodes)"
             return _result(name, FAILED, problem, seed=seed, env=probe.name,
-                           where=f"after {episodes} episodes")
+                           where=f"after {episodes} episodes", rebuild=code)
     runs = f"{len(ctx.seeds)} seed(s) x {episodes} episodes on {probe.name}"
     return _result(name, PASSED, f"{what} ({runs})")
 
@@ -462,7 +527,7 @@ def check_masks(ctx: Context) -> CheckResult:
 
     Masks arrive in ``info["action_mask"]`` and are passed to ``act(obs,
     mask=...)`` and ``observe(..., next_mask=...)``. See
-    :func:`tdkit.verify._probes.masks_probe`.
+    :func:`tdkit.verify.probes.masks_probe`.
     """
     if ctx.prediction:
         return _skip("masks", "prediction learner: act follows the given policy")
@@ -480,6 +545,17 @@ def check_truncation(ctx: Context) -> CheckResult:
     """Bootstrap past ``truncated``: a time limit is not the end of the task."""
     return _probe_check(ctx, "truncation", truncation_probe(ctx.prediction),
                         what="values bootstrap across the time limit")
+
+
+def check_both_flags(ctx: Context) -> CheckResult:
+    """No bootstrap when an episode terminates exactly at the time limit: terminated wins.
+
+    See :func:`tdkit.verify.probes.both_flags_probe`: the driver hands the
+    agent ``terminated=True, truncated=True`` on the step that both reaches
+    the time limit and enters a terminal state.
+    """
+    return _probe_check(ctx, "both_flags", both_flags_probe(ctx.prediction),
+                        what="no bootstrap when terminated and truncated are both set")
 
 
 def check_discounted_returns(ctx: Context) -> CheckResult:
@@ -607,6 +683,211 @@ def check_next_action(ctx: Context) -> CheckResult:
     )
 
 
+def _read_table(agent: Any, kind: AgentKind, states: list[int], here: str) -> np.ndarray:
+    """Every value of ``states``: rows of q_values, or a column of values (as (S, 1))."""
+    if kind.q_values:
+        return read_q(agent, states, here)
+    return read_v(agent, states, here).reshape(-1, 1)
+
+
+class _BoundaryWatcher(Watcher):
+    """The first update of each episode may change no value of another state-action pair.
+
+    At the first step of an episode nothing of the previous episode is
+    pending (it ended with ``terminated``, ``truncated`` or a settled cut),
+    so an update that returns at most one TD error may change only the
+    value of the pair just observed. A change anywhere else is a trace or a
+    buffer carried over from the previous episode. Updates that return more
+    than one TD error (planning) are not judged.
+    """
+
+    def __init__(self, agent: Any, kind: AgentKind, states: list[int]) -> None:
+        self.agent, self.kind, self.states = agent, kind, states
+        self.before: np.ndarray | None = None
+        self.leak: tuple[str, int, int, float, float] | None = None
+
+    def before_observe(self, episode: int, step: int, transition: tuple) -> None:
+        self.before = None
+        if step == 0 and self.leak is None:
+            self.before = _read_table(self.agent, self.kind, self.states, where(episode, step))
+
+    def after_update(self, episode: int, step: int, transition: tuple, errors: tuple) -> None:
+        if self.before is None or len(errors) > 1:
+            return
+        after = _read_table(self.agent, self.kind, self.states, where(episode, step))
+        s, a = int(transition[0]), (int(transition[1]) if self.kind.q_values else 0)
+        changed = np.argwhere(after != self.before)
+        for i, j in changed:
+            if (self.states[int(i)], int(j)) != (s, a):
+                self.leak = (where(episode, step), self.states[int(i)], int(j),
+                             float(self.before[i, j]), float(after[i, j]))
+                return
+
+
+#: Steps after which the episode-boundary check cuts every other episode.
+CUT_AFTER = 2
+
+
+def check_episode_boundaries(ctx: Context) -> CheckResult:
+    r"""Nothing of one episode reaches the next: no trace or buffer carried over.
+
+    On the discount probe, every other episode is cut after
+    :data:`CUT_AFTER` steps without ``terminated`` or ``truncated``, as
+    ``tdkit.train(agent, env, episodes=1, steps=2)`` cuts it (the driver then
+    calls the agent's ``end_episode()``, which must settle the episode as a
+    time-limit truncation). The next episode starts in a fresh start state.
+    Two findings fail the check: (1) the first update of an episode (one TD
+    error at most) changes the value of a pair other than the one just
+    observed: the agent carried traces or a multi-step buffer across the
+    episode boundary; (2) the values after training differ from :math:`Q^*`
+    by more than the tolerance (a settled cut bootstraps, so :math:`Q^*` is
+    unchanged; a buffer glued onto the next episode is not). Finding (1) is
+    not looked for in agents that say they plan (a positive ``planning_steps``
+    attribute), whose updates replay earlier pairs on purpose.
+    """
+    name = "episode_boundaries"
+    probe = discount_probe(ctx.prediction)
+    episodes = PROBE_EPISODES
+    bug = "carrying traces or a buffer across episodes (no end_episode semantics)"
+    for seed in ctx.seeds:
+        env = probe.make_env()
+        code = (
+            f"env = {probe_code(probe, ctx.prediction)}; agent = make_agent(env, {seed}); "
+            f"[tdkit.train(agent, env, episodes=1, steps={CUT_AFTER} if k % 2 == 0 else None, "
+            f"seed=np.random.SeedSequence({seed}, spawn_key=(k,))) for k in range({episodes})]"
+        )
+        try:
+            agent = build_agent(ctx.make_agent, env, seed)
+            states = list(range(probe.mdp.n_states))
+            watcher = _BoundaryWatcher(agent, ctx.kind, states) if (
+                (ctx.kind.q_values or ctx.kind.values) and not _plans(agent)) else Watcher()
+            for k in range(episodes):
+                run_episodes(agent, env, episodes=1,
+                             seed=np.random.SeedSequence(seed, spawn_key=(k,)),
+                             watcher=watcher, cut_after=CUT_AFTER if k % 2 == 0 else None)
+                leak = getattr(watcher, "leak", None)
+                if leak is not None:
+                    here, s, a, old, new = leak
+                    label = f"Q({s}, {a})" if ctx.kind.q_values else f"V({s})"
+                    return _result(
+                        name, FAILED,
+                        f"the first update of an episode changed {label} from {fmt(old)} to "
+                        f"{fmt(new)}, a pair of an earlier episode: {bug}",
+                        seed=seed, env=probe.name, where=here, rebuild=code,
+                    )
+            problem = _judge(agent, probe, ctx.kind, f"after {episodes} episodes")
+        except AgentFault as fault:
+            return _fault(name, fault, seed, probe.name, code)
+        if problem is not None:
+            return _result(
+                name, FAILED,
+                f"{problem} with every other episode cut after {CUT_AFTER} steps (a settled cut "
+                f"bootstraps and leaves Q* unchanged): {bug}?",
+                seed=seed, env=probe.name, where=f"after {episodes} episodes", rebuild=code,
+            )
+    return _result(
+        name, PASSED,
+        f"no value of an earlier episode changed at an episode's first update; values right "
+        f"with every other episode cut after {CUT_AFTER} steps ({len(ctx.seeds)} seed(s) x "
+        f"{episodes} episodes on {probe.name})",
+    )
+
+
+class _StepSizeWatcher(Watcher):
+    """Reads the step size of one-entry updates: the change of the entry over the TD error."""
+
+    def __init__(self, agent: Any, kind: AgentKind, states: list[int]) -> None:
+        self.agent, self.kind, self.states = agent, kind, states
+        self.before: np.ndarray | None = None
+        self.seen: dict[tuple[int, int], list[float]] = {}
+
+    def before_observe(self, episode: int, step: int, transition: tuple) -> None:
+        self.before = _read_table(self.agent, self.kind, self.states, where(episode, step))
+
+    def after_update(self, episode: int, step: int, transition: tuple, errors: tuple) -> None:
+        if len(errors) != 1 or not abs(errors[0]) > 1e-6:
+            return
+        after = _read_table(self.agent, self.kind, self.states, where(episode, step))
+        changed = np.argwhere(after != self.before)
+        s, a = int(transition[0]), (int(transition[1]) if self.kind.q_values else 0)
+        if changed.shape[0] != 1 or (self.states[int(changed[0, 0])], int(changed[0, 1])) != (s, a):
+            return
+        i = self.states.index(s)
+        self.seen.setdefault((s, a), []).append(
+            float((after[i, a] - self.before[i, a]) / errors[0])
+        )
+
+
+def check_step_size(ctx: Context) -> CheckResult:
+    r"""A constant step size stays constant: no 1/n schedule where a constant was asked.
+
+    Applies to agents that state a constant step size (a real number in a
+    ``step_size`` attribute). On the discount probe the verifier reads the
+    step size of every update that returns one TD error :math:`\delta` and
+    changes one value only: :math:`lpha = \Delta Q(s, a) / \delta`. All
+    these must agree (to 1e-6 relative, rounding only; the value may differ
+    from ``step_size`` by a constant factor, as for Double Q-learning, whose
+    ``q_values`` average two tables of which one moves). Exact: no false
+    alarms for a correct agent.
+    """
+    name = "step_size"
+    built = _probe_agent(ctx)
+    stated = getattr(built, "step_size", None)
+    if isinstance(stated, bool) or not isinstance(stated, (int, float)):
+        return _skip(name, "the agent states no constant step_size (a real number attribute)")
+    if _plans(built):
+        return _skip(name, "planning agent (planning_steps > 0): its updates also replay "
+                     "earlier pairs, so one update's step size cannot be read")
+    if not (ctx.kind.q_values or ctx.kind.values):
+        return _skip(name, "needs q_values(obs) or values(obs) to read the updates")
+    probe = discount_probe(ctx.prediction)
+    episodes = 200
+    seed = ctx.seed
+    env = probe.make_env()
+    code = rebuild_code(probe_code(probe, ctx.prediction), seed, episodes, None)
+    try:
+        agent = build_agent(ctx.make_agent, env, seed)
+        watcher = _StepSizeWatcher(agent, ctx.kind, list(range(probe.mdp.n_states)))
+        run_episodes(agent, env, episodes=episodes, seed=seed, watcher=watcher)
+    except AgentFault as fault:
+        return _fault(name, fault, seed, probe.name, code)
+    values = [v for series in watcher.seen.values() for v in series]
+    if not values:
+        return _skip(name, "no update changed exactly one value with one TD error")
+    low, high = min(values), max(values)
+    if high - low > 1e-6 * max(abs(high), abs(low)):
+        (s, a), series = max(watcher.seen.items(), key=lambda kv: max(kv[1]) - min(kv[1]))
+        head = ", ".join(fmt(v) for v in series[:4])
+        harmonic = all(abs(v * (k + 1) - 1.0) < 1e-6 for k, v in enumerate(series[:4]))
+        kind = "a 1/n (sample-average) schedule" if harmonic else "a step size that changes"
+        return _result(
+            name, FAILED,
+            f"the step sizes of the updates of ({s}, {a}) were {head}, ... although the agent "
+            f"states the constant step_size={stated!r}: {kind} where a constant was asked",
+            seed=seed, env=probe.name, where=f"after {episodes} episodes", rebuild=code,
+        )
+    return _result(
+        name, PASSED,
+        f"{len(values)} one-value updates, all with step size {fmt(low)} (stated step_size="
+        f"{stated!r})",
+    )
+
+
+def _plans(agent: Any) -> bool:
+    """Whether the agent says it plans (a positive ``planning_steps``): its updates then
+    replay pairs of earlier episodes on purpose, so per-update readings do not apply."""
+    steps = getattr(agent, "planning_steps", 0)
+    return isinstance(steps, (int, float)) and not isinstance(steps, bool) and steps > 0
+
+
+def _probe_agent(ctx: Context) -> Any:
+    """An agent built on the discount probe (for reading its stated hyper-parameters)."""
+    try:
+        return build_agent(ctx.make_agent, discount_probe(ctx.prediction).make_env(), ctx.seed)
+    except AgentFault:
+        return None
+
+
 class _FiniteWatcher(Watcher):
     def __init__(self, agent: Any, kind: AgentKind, states: list[int]) -> None:
         self.agent = agent
@@ -649,7 +930,8 @@ def check_numerical_hygiene(ctx: Context) -> CheckResult:
         try:
             agent = build_agent(ctx.make_agent, env, seed)
             watcher = _FiniteWatcher(agent, ctx.kind, [0, 1, 2])
-            run_episodes(agent, env, episodes=episodes, seed=seed, watcher=watcher)
+            run_episodes(agent, env, episodes=episodes, seed=seed, watcher=watcher,
+                         max_episode_steps=probe.max_steps)
         except AgentFault as fault:
             return _fault(name, fault, seed, probe.name)
     return _result(
@@ -840,9 +1122,12 @@ CHECKS: tuple[Callable[[Context], CheckResult], ...] = (
     check_masks,
     check_terminal,
     check_truncation,
+    check_both_flags,
     check_discounted_returns,
     check_next_action,
     check_state_encoding,
+    check_episode_boundaries,
+    check_step_size,
     check_numerical_hygiene,
     check_convergence,
 )
