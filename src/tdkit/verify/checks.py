@@ -1075,7 +1075,7 @@ class _ConvergenceWatcher(Watcher):
             self._rows = (read_q(self.agent, [obs])[0], read_q(self.agent, [next_obs])[0])
 
     def after_update(self, episode: int, step: int, transition: tuple, errors: tuple) -> None:
-        if episode < self.start:
+        if episode < self.start or not (self.kind.q_values or self.kind.values):
             return
         self._tick += 1
         if self._tick % READ_EVERY == 0:
@@ -1145,6 +1145,9 @@ def _judge_convergence(
     starts = [int(s) for s in np.flatnonzero(mdp.initial > 0)]
     tol = _tolerance(solution.v[live])
     here = f"after {problem.episodes} episodes"
+    if not (kind.q_values or kind.values):  # behaviour only: judge the greedy policy
+        problem = _judge_greedy_policy(agent, mdp, live, starts, tol, here, solution, None)
+        return problem, "the optimum Q*"
     batches = watcher.batch_means()
     if batches.size == 0:
         return "no update was observed in the second half of training", ""
