@@ -35,6 +35,37 @@ reaches :math:`0.9^{50} \approx 0.5\%` (chains of bootstrapping multiply this
 by a polynomial factor of the chain length, at most 5). Agents whose factories
 use much smaller step sizes need more episodes than the verifier gives them;
 failure messages state the number of training episodes.
+
+False-alarm rates (what each check is built for, per run of the check)
+----------------------------------------------------------------------
+Every check aims at no more than 1 false alarm in 1,000 runs of a correct
+agent; the measured rates are in docs/verify.md ("Error rates").
+
+* Exact checks, no false alarm possible for a correct agent: ``protocol``,
+  ``reproducibility``, ``masks`` (a masked action taken), ``next_action``
+  (an action other than the one bootstrapped on), ``step_size`` (step sizes
+  that differ beyond rounding), ``episode_boundaries`` (a value of an
+  earlier pair changed at an episode's first update), ``numerical_hygiene``,
+  and the greedy-mode reading of every probe (``GREEDY_SAMPLES``).
+* ``tie_breaking``: a chi-square test at p < ``TIE_P_VALUE`` = 1e-4, so
+  1e-4 per run.
+* Probe values (``masks``, ``terminal``, ``truncation``, ``both_flags``,
+  ``discounted_returns``, ``state_encoding``, ``episode_boundaries``): the
+  probes are deterministic, so a correct agent's error after ``k`` updates
+  of a pair (and its successors) is at most ``(1 - alpha)^k`` times the
+  value scale (times the chain length, at most 5). With alpha >= 0.1 it is
+  below the 5% tolerance after k >= 29 updates on one-step probes (44 on the
+  5-step chain, whose pairs get about 150). The least updated checked pairs,
+  those of the state probe's 8 start states, get Binomial(800, 1/8 *
+  (1 - epsilon/2)) updates (epsilon <= 0.2): mean 90, standard deviation 9,
+  so 29 is more than 6 standard deviations below (probability < 1e-9).
+  Double Q-learning gives each table about 45; the average of its two
+  tables is within tolerance once the less updated one has 22 (5 standard
+  deviations of Binomial(90, 1/2) below 45, probability < 1e-6).
+* ``convergence``: margin ``tol + t * SE`` with the Student-t quantile for
+  ``CONVERGENCE_FALSE_ALARM / m`` (Bonferroni over the m values compared):
+  1e-3 per run when the iterate averages are unbiased and their batch means
+  close to independent and normal.
 """
 
 from __future__ import annotations
