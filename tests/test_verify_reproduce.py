@@ -60,3 +60,16 @@ def test_an_unknown_probe_name_is_a_clear_error():
 
     with pytest.raises(tdkit.InvalidParameterError, match="unknown probe 'nope'"):
         probes.get("nope")
+
+
+def test_average_reward_agents_get_the_gain_check_and_others_skip_it():
+    # The check itself is derived and calibrated in tdkit.verify._average_checks
+    # (docs/average-reward.md); here: verify_agent runs it for agents with an
+    # average_reward attribute and skips it, with a reason, for the rest.
+    def make_differential(env, seed):
+        return tdkit.DifferentialQLearning.for_env(env, seed=seed)
+
+    result = run_check(make_differential, "average_reward", seed=0)
+    assert result.passed, result
+    skipped = run_check(make_agent, "average_reward", seed=0)
+    assert skipped.skipped and "average_reward" in skipped.message

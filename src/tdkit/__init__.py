@@ -29,11 +29,15 @@ from .dp import (
     policy_iteration,
     value_iteration,
 )
+from .dp_average import AverageSolution, policy_gain, relative_value_iteration
 from .dp_solve import solve
 from .envs.finite import FiniteMDP
 from .history import History
 from .learners import (
     TD0,
+    DifferentialQLearning,
+    DifferentialSarsa,
+    DifferentialTD,
     DoubleQLearning,
     DynaQ,
     DynaQPlus,
@@ -73,6 +77,9 @@ __all__ = [
     # prediction
     "TD0",
     "TDLambda",
+    # average reward (continuing tasks)
+    "DifferentialQLearning", "DifferentialSarsa", "DifferentialTD",
+    "AverageSolution", "policy_gain", "relative_value_iteration",
     # training and persistence
     "History",
     "evaluate",

@@ -35,7 +35,7 @@ from typing import Any, NamedTuple
 import numpy as np
 
 from ._errors import InvalidParameterError, TdkitError
-from ._validation import check_in_range, check_positive_int
+from ._validation import require_in_range, require_positive_int
 from .envs.finite import FiniteMDP
 
 __all__ = [
@@ -440,7 +440,7 @@ def greedy_policy(q: Any, *, atol: float = 1e-9) -> GreedyPolicy:
             f"{owner}: q[{s}, :] is -inf everywhere; every state needs a finite action value."
         )
     _check_values(owner, "q", np.where(excluded, 0.0, array), array.shape)
-    atol = check_in_range(owner, "atol", atol, 0.0, math.inf)
+    atol = require_in_range(owner, "atol", atol, 0.0, math.inf)
     maximisers = array >= array.max(axis=1, keepdims=True) - atol
     return GreedyPolicy(np.argmax(maximisers, axis=1), maximisers)
 
@@ -480,7 +480,7 @@ def epsilon_greedy_policy(
     array([[0.06666667, 0.        , 0.86666667, 0.06666667]])
     """
     owner = "epsilon_greedy_policy"
-    epsilon = check_in_range(owner, "epsilon", epsilon, 0.0, 1.0)
+    epsilon = require_in_range(owner, "epsilon", epsilon, 0.0, 1.0)
     array = np.asarray(q, dtype=np.float64)
     if masks is None:
         allowed = np.ones(array.shape, dtype=bool)
@@ -817,9 +817,9 @@ def evaluate_policy(
             f"{owner}: method must be 'auto', 'direct', 'sparse' or 'iterative'; "
             f"got {method!r}."
         )
-    tol = check_in_range(owner, "tol", tol, 0.0, math.inf, low_open=True)
+    tol = require_in_range(owner, "tol", tol, 0.0, math.inf, low_open=True)
     cap = DEFAULT_MAX_ITERATIONS if max_iterations is None else max_iterations
-    cap = check_positive_int(owner, "max_iterations", cap)
+    cap = require_positive_int(owner, "max_iterations", cap)
     return _evaluate(owner, mdp, pi, method=method, tol=tol, max_iterations=cap)
 
 
@@ -867,7 +867,7 @@ def _check_exploration(owner: str, exploration: Any) -> float:
             f"{owner}: exploration must be a float in [0, 1] (the ε of ε-greedy); got "
             f"{exploration!r}."
         )
-    return check_in_range(owner, "exploration", float(exploration), 0.0, 1.0)
+    return require_in_range(owner, "exploration", float(exploration), 0.0, 1.0)
 
 
 def _reach_terminal(mdp: FiniteMDP) -> tuple[np.ndarray, np.ndarray]:
@@ -1040,10 +1040,10 @@ def value_iteration(
     """
     owner = "value_iteration"
     mdp = _check_mdp(owner, mdp)
-    tol = check_in_range(owner, "tol", tol, 0.0, math.inf, low_open=True)
+    tol = require_in_range(owner, "tol", tol, 0.0, math.inf, low_open=True)
     epsilon = _check_exploration(owner, exploration)
     cap = DEFAULT_MAX_ITERATIONS if max_iterations is None else max_iterations
-    cap = check_positive_int(owner, "max_iterations", cap)
+    cap = require_positive_int(owner, "max_iterations", cap)
     gamma = mdp.gamma
     v = (
         np.zeros(mdp.n_states)
@@ -1133,8 +1133,8 @@ def policy_iteration(
     """
     owner = "policy_iteration"
     mdp = _check_mdp(owner, mdp)
-    max_iterations = check_positive_int(owner, "max_iterations", max_iterations)
-    atol = check_in_range(owner, "atol", atol, 0.0, math.inf)
+    max_iterations = require_positive_int(owner, "max_iterations", max_iterations)
+    atol = require_in_range(owner, "atol", atol, 0.0, math.inf)
     epsilon = _check_exploration(owner, exploration)
     masks = mdp.masks
     if initial_policy is None:
@@ -1167,3 +1167,9 @@ def policy_iteration(
         "steps (ties closer than atol can make policies alternate); raise atol or "
         "max_iterations."
     )
+
+
+# Average reward lives in its own module; re-exported so tdkit.dp reaches it too.
+from .dp_average import AverageSolution, policy_gain, relative_value_iteration  # noqa: E402
+
+__all__ += ["AverageSolution", "policy_gain", "relative_value_iteration"]

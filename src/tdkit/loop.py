@@ -16,15 +16,18 @@ from collections.abc import Callable, Iterable
 from pathlib import Path
 from typing import Any
 
+import gymnasium
 import numpy as np
 
 from ._errors import InvalidParameterError
-from ._validation import check_positive_int
+from ._progress import progress_bar
+from ._validation import require_positive_int
 from .envs import adapt
 from .history import History
 from .runs.episode import run_episode
 from .runs.fit import check_agent_fits
 from .runs.seeds import episode_seed, root_sequence
+from .runs.vector import train_vector
 
 __all__ = ["episode_seed", "evaluate", "train"]
 
@@ -39,14 +42,6 @@ _ENDLESS_STEPS = 1_000_000
 Callback = Callable[[History, Any], Any]
 
 
-def _progress_bar(total: int | None, unit: str, enabled: bool) -> Any:
-    if not enabled:
-        return None
-    try:
-        from tqdm.auto import tqdm
-    except ImportError as exc:  # pragma: no cover - depends on the environment
-        raise ImportError("progress=True needs tqdm: pip install 'tdkit[progress]'") from exc
-    return tqdm(total=total, unit=unit)
 
 
 def train(
@@ -63,7 +58,7 @@ def train(
     resume: Any = None,
     use_action_masks: bool = True,
     checkpoint_every: int = 100,
-) -> History:
+) -> History | list[History]:
     """Train ``agent`` on ``env`` and return the per-episode :class:`History`.
 
     Each step runs ``act -> env.step -> observe -> update``. The action mask
@@ -72,11 +67,17 @@ def train(
 
     Parameters
     ----------
-    agent : Agent
-        Any object with ``act``, ``observe`` and ``update``.
+    agent : Agent or list of Agent
+        Any object with ``act``, ``observe`` and ``update``; a list with one
+        agent per sub-environment when ``env`` is a vector environment.
     env : environment
         Anything :func:`tdkit.envs.adapt` accepts (gymnasium env or id,
-        legacy gym-style, dm_env-style, or a plain reset/step object).
+        legacy gym-style, dm_env-style, or a plain reset/step object), or a
+        ``gymnasium.vector.VectorEnv`` (both autoreset modes, next step and
+        same step; see :mod:`tdkit.runs.vector`): agent ``k`` then trains on
+        sub-environment ``k`` exactly as ``train(agents[k], env,
+        seed=tdkit.runs.agent_roots(seed, K)[k])`` would, and ``episodes`` and
+        ``steps`` are budgets per agent.
     episodes, steps : int, optional
         Stop after this many episodes or environment steps, whichever comes
         first; at least one is required. An episode cut by ``steps`` is
@@ -111,6 +112,8 @@ def train(
     Returns
     -------
     History
+        Or, for a ``gymnasium.vector.VectorEnv``, a list with one History per
+        sub-environment.
 
     Raises
     ------
@@ -123,12 +126,26 @@ def train(
             "train: give episodes=... or steps=... (or both); got neither."
         )
     if episodes is not None:
-        episodes = check_positive_int("train", "episodes", episodes)
+        episodes = require_positive_int("train", "episodes", episodes)
     if steps is not None:
-        steps = check_positive_int("train", "steps", steps)
+        steps = require_positive_int("train", "steps", steps)
     if max_episode_steps is not None:
-        max_episode_steps = check_positive_int("train", "max_episode_steps", max_episode_steps)
-    checkpoint_every = check_positive_int("train", "checkpoint_every", checkpoint_every)
+        max_episode_steps = require_positive_int("train", "max_episode_steps", max_episode_steps)
+    checkpoint_every = require_positive_int("train", "checkpoint_every", checkpoint_every)
+    if isinstance(env, gymnasium.vector.VectorEnv):
+        extras = {"checkpoint": checkpoint, "resume": resume, "callbacks": tuple(callbacks),
+                  "progress": progress}
+        given = [k for k, v in extras.items() if v not in (None, (), False)]
+        if given:
+            raise InvalidParameterError(
+                f"train: {', '.join(given)} cannot be used with a vector environment; train "
+                "each agent on its own environment for those features."
+            )
+        agents = [agent] if not isinstance(agent, (list, tuple)) else agent
+        return train_vector(
+            agents, env, episodes=episodes, steps=steps, seed=seed,
+            max_episode_steps=max_episode_steps, use_action_masks=use_action_masks,
+        )
     env = adapt(env)
     check_agent_fits(agent, env, owner="train")
     if checkpoint is not None:
@@ -141,8 +158,8 @@ def train(
     if resume is not None:
         root, episode, total, history = _resume(resume, agent, root, seed)
     by_steps = steps is not None
-    bar = _progress_bar(steps if by_steps else episodes, "step" if by_steps else "episode",
-                        progress)
+    bar = progress_bar("train", steps if by_steps else episodes, progress,
+                       unit="step" if by_steps else "episode")
     warn_after = _ENDLESS_STEPS if (not by_steps and max_episode_steps is None) else None
     end = "terminated"  # how the last episode ended
     started = time.perf_counter()
@@ -293,9 +310,9 @@ def evaluate(
     numpy.ndarray
         Shape ``(episodes,)``, the undiscounted return of each episode.
     """
-    episodes = check_positive_int("evaluate", "episodes", episodes)
+    episodes = require_positive_int("evaluate", "episodes", episodes)
     if max_episode_steps is not None:
-        max_episode_steps = check_positive_int("evaluate", "max_episode_steps", max_episode_steps)
+        max_episode_steps = require_positive_int("evaluate", "max_episode_steps", max_episode_steps)
     env = adapt(env)
     check_agent_fits(agent, env, owner="evaluate")
     root = root_sequence(seed, owner="evaluate")

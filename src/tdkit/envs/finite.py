@@ -26,7 +26,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from .._errors import EnvironmentProtocolError, InvalidParameterError
-from .._validation import check_in_range
+from .._validation import require_in_range
 
 if TYPE_CHECKING:
     from .model_env import FiniteMDPEnv
@@ -38,6 +38,9 @@ _PROB_ATOL = 1e-8
 
 _REMOVAL = "0.3.0"
 """Version that removes the deprecated keyword spellings."""
+
+_CHUNK_ENTRIES = 2**19
+"""Successor slots per block of :meth:`FiniteMDP.expected_next` on large sparse models."""
 
 _DENSE_LIMIT = 2**26
 """Largest number of entries (S * A * S) a sparse model expands to as dense ``P``."""
@@ -326,7 +329,7 @@ class FiniteMDP:
             raise InvalidParameterError(
                 f"{owner}: P must have at least one action; got shape {probs.shape}."
             )
-        gamma = check_in_range(owner, "gamma", gamma, 0.0, 1.0)
+        gamma = require_in_range(owner, "gamma", gamma, 0.0, 1.0)
         term = _terminal_mask(owner, terminal, n_states)
         probs = _check_probabilities(owner, "P", probs, term, "next state")
         rewards = _as_float_array(owner, "R", R)
@@ -448,7 +451,7 @@ class FiniteMDP:
             )
         p = _as_float_array(owner, "probs", probs)
         _check_shape(owner, "probs", p, nxt.shape, "(S, A, K)")
-        gamma = check_in_range(owner, "gamma", gamma, 0.0, 1.0)
+        gamma = require_in_range(owner, "gamma", gamma, 0.0, 1.0)
         term = _terminal_mask(owner, terminal, n_states)
         p = _check_probabilities(owner, "probs", p, term, "successor slot")
         r = _as_float_array(owner, "rewards", rewards)
@@ -558,7 +561,7 @@ class FiniteMDP:
 
         owner = "FiniteMDP.from_gymnasium"
         table = read_transition_table(env)
-        gamma = check_in_range(owner, "gamma", gamma, 0.0, 1.0)
+        gamma = require_in_range(owner, "gamma", gamma, 0.0, 1.0)
         shape = table.probs.shape[:2]
         masks = _action_masks(owner, _read_action_masks(env, shape), shape, table.terminal)
         return cls._build_sparse(
@@ -703,7 +706,18 @@ class FiniteMDP:
         """
         if self._P_flat is not None:
             return (self._P_flat @ v).reshape(self._n_states, self._n_actions)
-        return np.einsum("sak,sak->sa", self._probs, np.take(v, self._next))
+        nxt, probs = self._next, self._probs
+        n, m, k = nxt.shape
+        rows = max(1, _CHUNK_ENTRIES // (m * k))
+        if rows >= n:
+            return np.einsum("sak,sak->sa", probs, np.take(v, nxt))
+        # Blocks of states keep the gathered (rows, A, K) temporary in cache:
+        # 2-3x faster than one pass at 10^5-10^6 states (benchmarks/bench_dp.py).
+        out = np.empty((n, m))
+        for start in range(0, n, rows):
+            block = slice(start, start + rows)
+            np.einsum("sak,sak->sa", probs[block], np.take(v, nxt[block]), out=out[block])
+        return out
 
     # ------------------------------------------------------------------ conversions
     def to_dense(self) -> FiniteMDP:
@@ -747,7 +761,7 @@ class FiniteMDP:
 
     def with_gamma(self, gamma: float) -> FiniteMDP:
         """Return the same model with another discount (arrays are shared, not copied)."""
-        gamma = check_in_range("FiniteMDP.with_gamma", "gamma", gamma, 0.0, 1.0)
+        gamma = require_in_range("FiniteMDP.with_gamma", "gamma", gamma, 0.0, 1.0)
         clone = FiniteMDP.__new__(FiniteMDP)
         clone.__dict__.update(self.__dict__)
         clone._gamma = gamma

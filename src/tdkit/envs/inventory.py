@@ -25,7 +25,7 @@ from typing import Any, ClassVar
 import gymnasium as gym
 import numpy as np
 
-from .._validation import check_in_range, check_positive_int, check_real
+from .._validation import require_in_range, require_positive_int, require_real
 
 __all__ = ["InventoryEnv"]
 
@@ -69,17 +69,19 @@ class InventoryEnv(gym.Env):
         weeks: int = 52,
         gamma: float = 0.99,
     ) -> None:
-        self.capacity = check_positive_int("InventoryEnv", "capacity", capacity)
-        self.mean_demand = check_in_range(
+        self.capacity = require_positive_int("InventoryEnv", "capacity", capacity)
+        self.mean_demand = require_in_range(
             "InventoryEnv", "mean_demand", mean_demand, 0.0, math.inf, low_open=True
         )
-        self.price = check_real("InventoryEnv", "price", price)
-        self.unit_cost = check_real("InventoryEnv", "unit_cost", unit_cost)
-        self.order_fee = check_real("InventoryEnv", "order_fee", order_fee)
-        self.holding_cost = check_real("InventoryEnv", "holding_cost", holding_cost)
-        self.lost_sale_penalty = check_real("InventoryEnv", "lost_sale_penalty", lost_sale_penalty)
-        self.weeks = check_positive_int("InventoryEnv", "weeks", weeks)
-        self.gamma = check_in_range("InventoryEnv", "gamma", gamma, 0.0, 1.0)
+        self.price = require_real("InventoryEnv", "price", price)
+        self.unit_cost = require_real("InventoryEnv", "unit_cost", unit_cost)
+        self.order_fee = require_real("InventoryEnv", "order_fee", order_fee)
+        self.holding_cost = require_real("InventoryEnv", "holding_cost", holding_cost)
+        self.lost_sale_penalty = require_real(
+            "InventoryEnv", "lost_sale_penalty", lost_sale_penalty
+        )
+        self.weeks = require_positive_int("InventoryEnv", "weeks", weeks)
+        self.gamma = require_in_range("InventoryEnv", "gamma", gamma, 0.0, 1.0)
         self.observation_space = gym.spaces.Discrete(self.capacity + 1)
         self.action_space = gym.spaces.Discrete(self.capacity + 1)
         self._stock = 0

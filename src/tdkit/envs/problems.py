@@ -23,13 +23,15 @@ import numpy as np
 
 from .._errors import InvalidParameterError
 from .._seeding import SeedLike, as_generator
-from .._validation import check_in_range, check_positive_int, check_real
+from .._validation import require_in_range, require_positive_int, require_real
+from .access_control import access_control
 from .finite import FiniteMDP
 
 __all__ = [
     "GRID_ACTIONS",
     "KING_ACTIONS",
     "ChangingMaze",
+    "access_control",
     "blocking_maze",
     "cliff_walking",
     "dyna_maze",
@@ -52,8 +54,12 @@ KING_ACTIONS = (*GRID_ACTIONS, "up-right", "down-right", "down-left", "up-left",
 
 _MOVES = ((-1, 0), (0, 1), (1, 0), (0, -1), (-1, 1), (1, 1), (1, -1), (-1, -1), (0, 0))
 
-Outcome = tuple[float, int, float]
-"""(probability, next state, reward) of one successor slot."""
+class Successor(NamedTuple):
+    """One successor slot of a state-action pair, as the problems below list them."""
+
+    probability: float
+    next_state: int
+    reward: float
 
 
 class ChangingMaze(NamedTuple):
@@ -68,7 +74,7 @@ class ChangingMaze(NamedTuple):
 def _from_outcomes(
     n_states: int,
     n_actions: int,
-    outcomes: Callable[[int, int], Iterable[Outcome]],
+    outcomes: Callable[[int, int], Iterable[Successor]],
     *,
     gamma: float,
     terminal: np.ndarray,
@@ -85,10 +91,10 @@ def _from_outcomes(
     rewards = np.zeros((n_states, n_actions, width))
     for s, per_state in enumerate(table):
         for a, row in enumerate(per_state):
-            for k, (p, nxt, r) in enumerate(row):
-                next_states[s, a, k] = nxt
-                probs[s, a, k] = p
-                rewards[s, a, k] = r
+            for k, slot in enumerate(row):
+                next_states[s, a, k] = slot.next_state
+                probs[s, a, k] = slot.probability
+                rewards[s, a, k] = slot.reward
     return FiniteMDP.from_successors(
         next_states, probs, rewards, gamma=gamma, terminal=terminal, initial=initial
     )
@@ -109,7 +115,7 @@ def _clip_move(row: int, col: int, move: int, shape: tuple[int, int]) -> tuple[i
 
 
 def _gamma(owner: str, gamma: float) -> float:
-    return check_in_range(owner, "gamma", gamma, 0.0, 1.0)
+    return require_in_range(owner, "gamma", gamma, 0.0, 1.0)
 
 
 # ---------------------------------------------------------------- chapter 6/7: random walk
@@ -145,17 +151,17 @@ def random_walk(
     array([1., 2., 3., 4., 5.])
     """
     owner = "random_walk"
-    n = check_positive_int(owner, "n_states", n_states)
-    left = check_real(owner, "left_reward", left_reward)
-    right = check_real(owner, "right_reward", right_reward)
+    n = require_positive_int(owner, "n_states", n_states)
+    left = require_real(owner, "left_reward", left_reward)
+    right = require_real(owner, "right_reward", right_reward)
     size = n + 2
     terminal = np.zeros(size, dtype=bool)
     terminal[[0, size - 1]] = True
 
-    def outcomes(s: int, _a: int) -> list[Outcome]:
+    def outcomes(s: int, _a: int) -> list[Successor]:
         return [
-            (0.5, s - 1, left if s - 1 == 0 else 0.0),
-            (0.5, s + 1, right if s + 1 == size - 1 else 0.0),
+            Successor(0.5, s - 1, left if s - 1 == 0 else 0.0),
+            Successor(0.5, s + 1, right if s + 1 == size - 1 else 0.0),
         ]
 
     return _from_outcomes(
@@ -179,9 +185,9 @@ def gridworld_4x4(*, gamma: float = 1.0) -> FiniteMDP:
     terminal = np.zeros(16, dtype=bool)
     terminal[[0, 15]] = True
 
-    def outcomes(s: int, a: int) -> list[Outcome]:
+    def outcomes(s: int, a: int) -> list[Successor]:
         row, col = _clip_move(*divmod(s, 4), a, shape)
-        return [(1.0, row * 4 + col, -1.0)]
+        return [Successor(1.0, row * 4 + col, -1.0)]
 
     return _from_outcomes(
         16, 4, outcomes, gamma=_gamma("gridworld_4x4", gamma), terminal=terminal, initial=None
@@ -205,15 +211,15 @@ def gridworld_5x5(*, gamma: float = 0.9) -> FiniteMDP:
     shape = (5, 5)
     a_cell, a_prime, b_cell, b_prime = 1, 21, 3, 13
 
-    def outcomes(s: int, a: int) -> list[Outcome]:
+    def outcomes(s: int, a: int) -> list[Successor]:
         if s == a_cell:
-            return [(1.0, a_prime, 10.0)]
+            return [Successor(1.0, a_prime, 10.0)]
         if s == b_cell:
-            return [(1.0, b_prime, 5.0)]
+            return [Successor(1.0, b_prime, 5.0)]
         row, col = divmod(s, 5)
         new_row, new_col = _clip_move(row, col, a, shape)
         off_grid = (new_row, new_col) == (row, col)
-        return [(1.0, new_row * 5 + new_col, -1.0 if off_grid else 0.0)]
+        return [Successor(1.0, new_row * 5 + new_col, -1.0 if off_grid else 0.0)]
 
     return _from_outcomes(
         25, 4, outcomes, gamma=_gamma("gridworld_5x5", gamma),
@@ -266,7 +272,7 @@ def windy_gridworld(
     start, goal = 3 * n_cols, 3 * n_cols + 7
     terminal = _one_hot(n_rows * n_cols, goal).astype(bool)
 
-    def outcomes(s: int, a: int) -> list[Outcome]:
+    def outcomes(s: int, a: int) -> list[Successor]:
         row, col = divmod(s, n_cols)
         d_row, d_col = _MOVES[a]
         wind = _WIND[col]
@@ -277,7 +283,7 @@ def windy_gridworld(
         for p, w in winds:
             new_row = min(max(row + d_row - w, 0), n_rows - 1)
             new_col = min(max(col + d_col, 0), n_cols - 1)
-            result.append((p, new_row * n_cols + new_col, -1.0))
+            result.append(Successor(p, new_row * n_cols + new_col, -1.0))
         return result
 
     return _from_outcomes(
@@ -306,12 +312,12 @@ def cliff_walking(*, gamma: float = 1.0) -> FiniteMDP:
     start, goal = 36, 47
     cliff = set(range(37, 47))
 
-    def outcomes(s: int, a: int) -> list[Outcome]:
+    def outcomes(s: int, a: int) -> list[Successor]:
         row, col = _clip_move(*divmod(s, 12), a, shape)
         nxt = row * 12 + col
         if nxt in cliff:
-            return [(1.0, start, -100.0)]
-        return [(1.0, nxt, -1.0)]
+            return [Successor(1.0, start, -100.0)]
+        return [Successor(1.0, nxt, -1.0)]
 
     return _from_outcomes(
         48, 4, outcomes, gamma=_gamma("cliff_walking", gamma),
@@ -350,15 +356,15 @@ def maximization_bias(
     prefers "left"; the optimal policy takes "right", value 0 at A).
     """
     owner = "maximization_bias"
-    n_b = check_positive_int(owner, "n_b_actions", n_b_actions)
-    mean = check_real(owner, "mean", mean)
-    std = check_in_range(owner, "std", std, 0.0, math.inf)
+    n_b = require_positive_int(owner, "n_b_actions", n_b_actions)
+    mean = require_real(owner, "mean", mean)
+    std = require_in_range(owner, "std", std, 0.0, math.inf)
     n_actions = max(2, n_b)
 
-    def outcomes(s: int, a: int) -> list[Outcome]:
+    def outcomes(s: int, a: int) -> list[Successor]:
         if s == 0:
-            return [(1.0, 1, 0.0)] if a == 0 else [(1.0, 2, 0.0)]
-        return [(0.5, 2, mean + std), (0.5, 2, mean - std)]
+            return [Successor(1.0, 1, 0.0)] if a == 0 else [Successor(1.0, 2, 0.0)]
+        return [Successor(0.5, 2, mean + std), Successor(0.5, 2, mean - std)]
 
     return _from_outcomes(
         3, n_actions, outcomes, gamma=_gamma(owner, gamma),
@@ -371,7 +377,7 @@ def maximization_bias_mask(n_b_actions: int = 10) -> np.ndarray:
 
     State A has its two actions (left, right), state B all ``n_b_actions``.
     """
-    n_b = check_positive_int("maximization_bias_mask", "n_b_actions", n_b_actions)
+    n_b = require_positive_int("maximization_bias_mask", "n_b_actions", n_b_actions)
     mask = np.zeros((3, max(2, n_b)), dtype=bool)
     mask[0, :2] = True
     mask[1, :n_b] = True
@@ -400,18 +406,18 @@ def gamblers_problem(
     is optimal.
     """
     owner = "gamblers_problem"
-    p = check_in_range(owner, "p_heads", p_heads, 0.0, 1.0)
-    goal = check_positive_int(owner, "goal", goal, minimum=2)
+    p = require_in_range(owner, "p_heads", p_heads, 0.0, 1.0)
+    goal = require_positive_int(owner, "goal", goal, minimum=2)
     size = goal + 1
     terminal = np.zeros(size, dtype=bool)
     terminal[[0, goal]] = True
 
-    def outcomes(s: int, a: int) -> list[Outcome]:
+    def outcomes(s: int, a: int) -> list[Successor]:
         stake = min(a, s, goal - s)
         if stake == 0:
-            return [(1.0, s, 0.0)]
+            return [Successor(1.0, s, 0.0)]
         win = s + stake
-        return [(p, win, 1.0 if win == goal else 0.0), (1.0 - p, s - stake, 0.0)]
+        return [Successor(p, win, 1.0 if win == goal else 0.0), Successor(1.0 - p, s - stake, 0.0)]
 
     return _from_outcomes(
         size, goal // 2 + 1, outcomes, gamma=_gamma(owner, gamma), terminal=terminal,
@@ -437,12 +443,12 @@ def _maze(
     blocked = {r * n_cols + c for r, c in walls}
     goal_index = goal[0] * n_cols + goal[1]
 
-    def outcomes(s: int, a: int) -> list[Outcome]:
+    def outcomes(s: int, a: int) -> list[Successor]:
         row, col = _clip_move(*divmod(s, n_cols), a, shape)
         nxt = row * n_cols + col
         if nxt in blocked:
             nxt = s
-        return [(1.0, nxt, 1.0 if nxt == goal_index else 0.0)]
+        return [Successor(1.0, nxt, 1.0 if nxt == goal_index else 0.0)]
 
     size = n_rows * n_cols
     return _from_outcomes(
@@ -579,9 +585,9 @@ def garnet(
     (50, 3, 4)
     """
     owner = "garnet"
-    n = check_positive_int(owner, "n_states", n_states)
-    m = check_positive_int(owner, "n_actions", n_actions)
-    k = check_positive_int(owner, "branching", branching)
+    n = require_positive_int(owner, "n_states", n_states)
+    m = require_positive_int(owner, "n_actions", n_actions)
+    k = require_positive_int(owner, "branching", branching)
     if k > n:
         raise InvalidParameterError(
             f"{owner}: branching must be <= n_states = {n} (successors are distinct); "

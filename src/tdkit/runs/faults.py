@@ -17,6 +17,8 @@ from typing import Any
 import gymnasium
 import numpy as np
 
+from .._text import summarize_exception as describe_exception
+
 __all__ = ["AgentFault", "check_update_result", "checked_calls", "describe_exception"]
 
 
@@ -30,12 +32,6 @@ class AgentFault(Exception):
 
     def __str__(self) -> str:
         return f"{self.message} (at {self.where})" if self.where else self.message
-
-
-def describe_exception(exc: BaseException) -> str:
-    """``"TypeName: first line"`` of an exception, for one-line reports."""
-    text = str(exc).splitlines()[0] if str(exc) else ""
-    return f"{type(exc).__name__}: {text}" if text else type(exc).__name__
 
 
 def check_update_result(errors: Any, where: str | None = None) -> tuple[float, ...]:

@@ -111,6 +111,7 @@ __all__ = [
     "CHECKS",
     "LEVELS",
     "Context",
+    "check_average_reward",
     "check_both_flags",
     "check_convergence",
     "check_discounted_returns",
@@ -1315,6 +1316,27 @@ def check_convergence(ctx: Context) -> CheckResult:
     )
 
 
+def check_average_reward(ctx: Context) -> CheckResult:
+    """Average-reward agents (an ``average_reward`` attribute) learn the exact gain.
+
+    Runs :func:`tdkit.verify._average_checks.check_average_reward` (a
+    continuing probe with a known optimal gain; batch-means margin for a
+    false-alarm rate of 1e-3, derived there) for each seed of the level;
+    skipped for agents without ``average_reward``.
+    """
+    name = "average_reward"
+    agent = _probe_agent(ctx)
+    if agent is None or not hasattr(agent, "average_reward"):
+        return _skip(name, "no average_reward attribute: not an average-reward agent")
+    from ._average_checks import check_average_reward as _gain_check
+
+    for seed in ctx.seeds:
+        passed, message = _gain_check(ctx.make_agent, seed)
+        if not passed:
+            return _result(name, FAILED, message, seed=seed, env="average-probe")
+    return _result(name, PASSED, f"{message} ({len(ctx.seeds)} seed(s))")
+
+
 #: The checks in running order; check_protocol first (the others rely on it).
 CHECKS: tuple[Callable[[Context], CheckResult], ...] = (
     check_protocol,
@@ -1331,4 +1353,5 @@ CHECKS: tuple[Callable[[Context], CheckResult], ...] = (
     check_step_size,
     check_numerical_hygiene,
     check_convergence,
+    check_average_reward,
 )
