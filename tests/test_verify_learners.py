@@ -56,9 +56,10 @@ PLANNING = {"DynaQ", "DynaQPlus", "PrioritizedSweeping"}
 
 
 def _expected_skips(name):
+    # average_reward: only for agents with an average_reward attribute (none here).
     if _is_prediction(getattr(tdkit.learners, name)):
-        return {"tie_breaking", "masks", "next_action"}
-    allowed = {"next_action"}  # the SARSA-consistency check needs one-step targets
+        return {"tie_breaking", "masks", "next_action", "average_reward"}
+    allowed = {"next_action", "average_reward"}  # next_action needs one-step targets
     if name in PLANNING:
         allowed.add("step_size")  # planning replays pairs inside one update
     return allowed
