@@ -161,9 +161,11 @@ class CarriesTracesAcrossEpisodes(SarsaLambda):
 class SampleAverageStepSize(QLearning):
     """Uses 1/n (the n-th visit of the pair) although a constant step size was asked."""
 
-    def _count_visit(self, visits, s, a):
-        super()._count_visit(visits, s, a)
-        return 1.0 / visits[s, a]
+    def _td_step(self, values, visits, s, a, target, weight=1.0):
+        visits[s, a] += 1
+        delta = weight * (target - values[s, a])
+        values[s, a] += delta / visits[s, a]
+        return float(delta)
 
 
 class HalvingEncoder:

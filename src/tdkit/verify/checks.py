@@ -837,12 +837,21 @@ class _StepSizeWatcher(Watcher):
         self.agent, self.kind, self.states = agent, kind, states
         self.before: np.ndarray | None = None
         self.seen: dict[tuple[int, int], list[float]] = {}
+        self.visited: set[tuple[int, int]] = set()
+        self.first = False
 
     def before_observe(self, episode: int, step: int, transition: tuple) -> None:
+        if step == 0:
+            self.visited.clear()
+        pair = (int(transition[0]), int(transition[1]) if self.kind.q_values else 0)
+        # Only a pair's first visit in an episode is read: an accumulating trace of a
+        # revisited pair scales its update by more than 1.
+        self.first = pair not in self.visited
+        self.visited.add(pair)
         self.before = _read_table(self.agent, self.kind, self.states, where(episode, step))
 
     def after_update(self, episode: int, step: int, transition: tuple, errors: tuple) -> None:
-        if len(errors) != 1 or not abs(errors[0]) > 1e-6:
+        if len(errors) != 1 or not self.first:
             return
         after = _read_table(self.agent, self.kind, self.states, where(episode, step))
         changed = np.argwhere(after != self.before)
@@ -850,6 +859,8 @@ class _StepSizeWatcher(Watcher):
         if changed.shape[0] != 1 or (self.states[int(changed[0, 0])], int(changed[0, 1])) != (s, a):
             return
         i = self.states.index(s)
+        if not abs(errors[0]) > 1e-6 * (1.0 + abs(self.before[i, a])):
+            return  # too small a change to read the step size beyond rounding
         self.seen.setdefault((s, a), []).append(
             float((after[i, a] - self.before[i, a]) / errors[0])
         )
@@ -877,15 +888,16 @@ def check_step_size(ctx: Context) -> CheckResult:
                      "earlier pairs, so one update's step size cannot be read")
     if not (ctx.kind.q_values or ctx.kind.values):
         return _skip(name, "needs q_values(obs) or values(obs) to read the updates")
-    probe = discount_probe(ctx.prediction)
-    episodes = 200
+    probe = numeric_probe(ctx.prediction)
+    episodes = 100
     seed = ctx.seed
     env = probe.make_env()
-    code = rebuild_code(probe_code(probe, ctx.prediction), seed, episodes, None)
+    code = rebuild_code(probe_code(probe, ctx.prediction), seed, episodes, probe.max_steps)
     try:
         agent = build_agent(ctx.make_agent, env, seed)
-        watcher = _StepSizeWatcher(agent, ctx.kind, list(range(probe.mdp.n_states)))
-        run_episodes(agent, env, episodes=episodes, seed=seed, watcher=watcher)
+        watcher = _StepSizeWatcher(agent, ctx.kind, [0, 1, 2])
+        run_episodes(agent, env, episodes=episodes, seed=seed, watcher=watcher,
+                     max_episode_steps=probe.max_steps)
     except AgentFault as fault:
         return _fault(name, fault, seed, probe.name, code)
     values = [v for series in watcher.seen.values() for v in series]
@@ -895,7 +907,9 @@ def check_step_size(ctx: Context) -> CheckResult:
     if high - low > 1e-6 * max(abs(high), abs(low)):
         (s, a), series = max(watcher.seen.items(), key=lambda kv: max(kv[1]) - min(kv[1]))
         head = ", ".join(fmt(v) for v in series[:4])
-        harmonic = all(abs(v * (k + 1) - 1.0) < 1e-6 for k, v in enumerate(series[:4]))
+        counts = [1.0 / v if v > 0 else 0.0 for v in series[:4]]
+        harmonic = all(c >= 1 and abs(c - round(c)) < 1e-6 for c in counts) and all(
+            b > a for a, b in zip(counts, counts[1:], strict=False))  # 1/n, n = visits
         kind = "a 1/n (sample-average) schedule" if harmonic else "a step size that changes"
         return _result(
             name, FAILED,
