@@ -70,6 +70,7 @@ agent; the measured rates are in docs/verify.md ("Error rates").
 
 from __future__ import annotations
 
+import itertools
 from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
@@ -909,7 +910,7 @@ def check_step_size(ctx: Context) -> CheckResult:
         head = ", ".join(fmt(v) for v in series[:4])
         counts = [1.0 / v if v > 0 else 0.0 for v in series[:4]]
         harmonic = all(c >= 1 and abs(c - round(c)) < 1e-6 for c in counts) and all(
-            b > a for a, b in zip(counts, counts[1:], strict=False))  # 1/n, n = visits
+            b > a for a, b in itertools.pairwise(counts))  # 1/n, n = visits
         kind = "a 1/n (sample-average) schedule" if harmonic else "a step size that changes"
         return _result(
             name, FAILED,
