@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 
 import tdkit
-from tdkit import loop
+from tdkit.runs import training as loop
 from tdkit.envs import adapt
 from tdkit.runs import EndlessEpisodeWarning, episode_seed, root_sequence, run_episode
 

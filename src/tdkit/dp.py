@@ -35,6 +35,8 @@ from typing import Any, NamedTuple
 import numpy as np
 
 from ._errors import InvalidParameterError, TdkitError
+from ._model_args import _check_mdp, _check_values, _policy_probabilities
+from ._progress import progress_bar
 from ._validation import require_in_range, require_positive_int
 from .envs.finite import FiniteMDP
 
@@ -151,86 +153,6 @@ class GreedyPolicy(NamedTuple):
 
 
 # ---------------------------------------------------------------- validation
-def _check_mdp(owner: str, mdp: Any) -> FiniteMDP:
-    if not isinstance(mdp, FiniteMDP):
-        raise InvalidParameterError(
-            f"{owner}: mdp must be a tdkit.FiniteMDP; got {type(mdp).__name__}. "
-            "Build one with FiniteMDP(P, R, gamma=...) or FiniteMDP.from_gymnasium(env)."
-        )
-    return mdp
-
-
-def _check_values(owner: str, name: str, values: Any, shape: tuple[int, ...]) -> np.ndarray:
-    array = np.asarray(values, dtype=np.float64)
-    if array.shape != shape:
-        raise InvalidParameterError(
-            f"{owner}: {name} must have shape {shape}; got shape {array.shape}."
-        )
-    if not np.isfinite(array).all():
-        raise InvalidParameterError(f"{owner}: {name} must be finite; got {values!r:.80}.")
-    return array
-
-
-def _policy_probabilities(owner: str, mdp: FiniteMDP, policy: Any) -> np.ndarray:
-    """Return ``policy`` as an (S, A) probability array, validated."""
-    n, m = mdp.n_states, mdp.n_actions
-    array = np.asarray(policy)
-    if array.shape == (n,):
-        if not np.issubdtype(array.dtype, np.integer):
-            if not (np.issubdtype(array.dtype, np.floating) and (array == np.round(array)).all()):
-                raise InvalidParameterError(
-                    f"{owner}: a deterministic policy must hold action indices (ints); "
-                    f"got dtype {array.dtype}."
-                )
-            array = array.astype(np.intp)
-        bad = (array < 0) | (array >= m)
-        if bad.any():
-            s = int(np.argmax(bad))
-            raise InvalidParameterError(
-                f"{owner}: policy[{s}] = {int(array[s])!r} is not an action index in [0, {m})."
-            )
-        probs = np.zeros((n, m))
-        probs[np.arange(n), array] = 1.0
-        return _check_allowed(owner, mdp, probs)
-    if array.shape == (n, m):
-        probs = _check_values(owner, "policy", array, (n, m))
-        if (probs < 0).any():
-            s, a = (int(i) for i in np.argwhere(probs < 0)[0])
-            raise InvalidParameterError(
-                f"{owner}: policy[{s}, {a}] = {float(probs[s, a])!r} is negative; action "
-                "probabilities must be >= 0."
-            )
-        sums = probs.sum(axis=1)
-        off = np.abs(sums - 1.0) > 1e-8
-        if off.any():
-            s = int(np.argmax(off))
-            raise InvalidParameterError(
-                f"{owner}: policy[{s}, :] sums to {float(sums[s])!r}; action probabilities of "
-                "each state must sum to 1."
-            )
-        return _check_allowed(owner, mdp, probs / sums[:, None])
-    raise InvalidParameterError(
-        f"{owner}: policy must have shape (S,) = ({n},) (action indices) or (S, A) = "
-        f"({n}, {m}) (probabilities); got shape {array.shape}."
-    )
-
-
-def _check_allowed(owner: str, mdp: FiniteMDP, probs: np.ndarray) -> np.ndarray:
-    """Refuse a policy that gives a masked action positive probability."""
-    masks = mdp.masks
-    if masks is not None:
-        bad = (probs > 0) & ~masks
-        if bad.any():
-            s, a = (int(i) for i in np.argwhere(bad)[0])
-            raise InvalidParameterError(
-                f"{owner}: the policy takes action {a} in state {s} with probability "
-                f"{float(probs[s, a])!r}, but the model masks that action there "
-                f"(mdp.masks[{s}, {a}] is False). Use only allowed actions, e.g. "
-                "tdkit.agent_policy(agent, mdp) for a learner's greedy policy."
-            )
-    return probs
-
-
 # ---------------------------------------------------------------- Bellman operators
 def _action_values(mdp: FiniteMDP, v: np.ndarray) -> np.ndarray:
     # Terminal rows of the model are zero-reward self-loops, so once v is 0 on
@@ -619,16 +541,8 @@ def _evaluate_krylov(chain: FiniteMDP, tol: float) -> tuple[np.ndarray, bool] | 
 
 
 def _progress_bar(owner: str, enabled: bool, total: int) -> Any:
-    """A tqdm bar counting sweeps (tqdm imported only when asked for)."""
-    if not enabled:
-        return None
-    try:
-        from tqdm.auto import tqdm
-    except ImportError as exc:  # pragma: no cover - depends on the environment
-        raise ImportError(
-            f"{owner}: progress=True needs tqdm: pip install 'tdkit[progress]'"
-        ) from exc
-    return tqdm(total=total, unit="sweep", desc=owner)
+    """A bar counting sweeps (:func:`tdkit._progress.progress_bar`), or None."""
+    return progress_bar(owner, total, enabled, unit="sweep", desc=owner)
 
 
 def _fixed_point(

@@ -73,6 +73,7 @@ from typing import Any
 import numpy as np
 
 from ._errors import InvalidParameterError
+from ._model_args import _check_mdp, _check_values
 from ._validation import require_in_range, require_positive_int
 from .dp import (
     DEFAULT_MAX_ITERATIONS,
@@ -81,8 +82,6 @@ from .dp import (
     _allowed_counts,
     _backup,
     _check_exploration,
-    _check_mdp,
-    _check_values,
     _finish,
     _look_ahead,
     _progress_bar,

@@ -1,11 +1,11 @@
-"""Picklable agent factories (public path; they live in the runs layer, :mod:`tdkit._factories`)
+"""Picklable agent factories (public path; they live in :mod:`tdkit.runs._factories`)
 and the settings recommended for verifying tdkit's own learners."""
 
 from __future__ import annotations
 
 from typing import Any
 
-from .._factories import AgentFactory, agent_factory
+from ..runs._factories import AgentFactory, agent_factory
 
 __all__ = ["AgentFactory", "agent_factory", "recommended_settings"]
 

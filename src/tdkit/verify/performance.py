@@ -37,10 +37,10 @@ from typing import Any
 
 import numpy as np
 
-from .._dispatch import dispatch
-from .._results import SweepRunError
-from .._runs import check_callable, check_executor, check_seeds, seeded_run
 from .._validation import require_in_range, require_positive_int
+from ..runs._dispatch import dispatch
+from ..runs._one_run import check_callable, check_executor, check_seeds, seeded_run
+from ..runs._results import SweepRunError
 from ..stats import ScoreSummary, WelchResult, summarize_scores, welch_test
 
 __all__ = ["AgentScores", "PerformanceComparison", "compare_performance", "run_score"]

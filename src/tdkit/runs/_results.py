@@ -14,10 +14,10 @@ from typing import Any
 
 import numpy as np
 
-from ._errors import InvalidParameterError, TdkitError
-from ._validation import require_in_range, require_positive_int
+from .._errors import InvalidParameterError, TdkitError
+from .._validation import require_in_range, require_positive_int
+from ..stats import ConfidenceInterval, ScoreSummary, summarize_scores
 from .history import History
-from .stats import ConfidenceInterval, ScoreSummary, summarize_scores
 
 __all__ = [
     "METRICS",
