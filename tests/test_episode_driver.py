@@ -14,9 +14,9 @@ import numpy as np
 import pytest
 
 import tdkit
-from tdkit.runs import training as loop
 from tdkit.envs import adapt
 from tdkit.runs import EndlessEpisodeWarning, episode_seed, root_sequence, run_episode
+from tdkit.runs import training as loop
 
 
 class Chain(gym.Env):
