@@ -85,6 +85,7 @@ class _Lane:
         "length",
         "mask",
         "obs",
+        "started",
         "td_max",
         "td_n",
         "td_sum",
