@@ -18,7 +18,7 @@ from .dp import evaluate_policy, value_iteration
 from .envs.finite import FiniteMDP
 from .envs.inventory import InventoryEnv
 from .learners import QLearning
-from .loop import evaluate, train
+from .runs.training import evaluate, train
 
 __all__ = ["run_demo"]
 
