@@ -6,7 +6,23 @@ dynamic-programming optimum, and verify your own agents against them.
 
 from __future__ import annotations
 
-from . import batch, dp, encoders, envs, exploration, plot, schedules, stats, sweep, testing, verify
+from . import (
+    batch,
+    dp,
+    encoders,
+    envs,
+    exploration,
+    history,
+    loop,
+    plot,
+    runs,
+    schedules,
+    stats,
+    store,
+    sweep,
+    testing,
+    verify,
+)
 from ._errors import (
     CapacityError,
     EnvironmentProtocolError,
@@ -106,9 +122,13 @@ __all__ = [
     "encoders",
     "envs",
     "exploration",
+    "history",
+    "loop",
     "plot",
+    "runs",
     "schedules",
     "stats",
+    "store",
     "sweep",
     "testing",
     "verify",
