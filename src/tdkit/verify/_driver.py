@@ -46,6 +46,7 @@ class AgentKind:
 
     q_values: bool
     values: bool
+    average_reward: bool = False
 
     @property
     def prediction(self) -> bool:
@@ -54,6 +55,8 @@ class AgentKind:
 
     @property
     def label(self) -> str:
+        if self.average_reward:
+            return "average-reward learner: reads average_reward"
         if self.prediction:
             return "prediction learner: reads values(obs)"
         if self.q_values:
@@ -83,6 +86,7 @@ def agent_kind(agent: Any, obs: Any) -> AgentKind:
     return AgentKind(
         q_values=_answers(getattr(agent, "q_values", None), obs),
         values=_answers(getattr(agent, "values", None), obs),
+        average_reward=hasattr(agent, "average_reward"),
     )
 
 

@@ -17,6 +17,22 @@ __all__ = ["CHECK_NAMES", "assert_agent", "run_check", "verify_agent"]
 #: Names of the checks, in running order.
 CHECK_NAMES: tuple[str, ...] = tuple(check_name(c) for c in CHECKS)
 
+#: Checks that judge learned values against a discounted fixed point (Q*, the
+#: epsilon-greedy fixed point, discounted probe values). An average-reward agent
+#: (one with an ``average_reward`` attribute) learns differential values instead,
+#: which these do not describe; its values are judged by ``average_reward``, and
+#: a continuing-task learner carries a terminating transition into the next
+#: episode's start on purpose, which ``episode_boundaries`` would flag.
+DISCOUNTED_CHECKS = frozenset({
+    "masks", "terminal", "truncation", "both_flags", "discounted_returns", "next_action",
+    "state_encoding", "episode_boundaries", "convergence",
+})
+
+_AVERAGE_SKIP = (
+    "average-reward agent: its differential values are not discounted values, so this "
+    "discounted probe does not apply; the gain is checked by average_reward"
+)
+
 
 def _validate(owner: str, make_agent: Any, level: Any, seed: Any) -> None:
     if not callable(make_agent):
@@ -108,10 +124,13 @@ def verify_agent(
     _validate("verify_agent", make_agent, level, seed)
     protocol, ctx, agent_name = _prepare(make_agent, level, seed)
     results = [protocol]
+    average = ctx.kind is not None and ctx.kind.average_reward
     for check in CHECKS[1:]:
+        name = check_name(check)
         if protocol.failed:
-            results.append(CheckResult(check_name(check), SKIPPED,
-                                       "not run: the protocol check failed"))
+            results.append(CheckResult(name, SKIPPED, "not run: the protocol check failed"))
+        elif average and name in DISCOUNTED_CHECKS:
+            results.append(CheckResult(name, SKIPPED, _AVERAGE_SKIP))
         else:
             results.append(check(ctx))
     return VerificationReport(
