@@ -120,6 +120,24 @@ class _PairIndex:
         }
 
 
+def _check_predecessors(state: dict, derived: dict[int, set[tuple[int, int]]]) -> None:
+    """The saved predecessor lists must be exactly those the saved outcomes imply.
+
+    They are derived data (kept in insertion order, which prioritized sweeping
+    reads); a file whose lists disagree with its outcomes is refused.
+    """
+    saved: dict[int, set[tuple[int, int]]] = {}
+    for s2, pairs in state["predecessors"]:
+        _expect(s2 not in saved, "predecessors", s2, "listed once")
+        found = {(p[0], p[1]) for p in pairs}
+        _expect(len(found) == len(pairs), "predecessors", pairs, "distinct pairs")
+        if found:
+            saved[s2] = found
+    derived = {s2: pairs for s2, pairs in derived.items() if pairs}
+    _expect(saved == derived, "predecessors", state["predecessors"],
+            "the pairs whose recorded outcomes lead to each state")
+
+
 def _expect(ok: Any, where: str, value: Any, expected: str) -> None:
     if not ok:
         raise ValueError(f"model.{where}: {value!r:.80} is not {expected}.")
@@ -213,6 +231,10 @@ class LastOutcomeModel(_PairIndex):
             _expect(ok, "table", row, "[state, action, reward, next state, terminated, mask]")
             pairs.discard((row[0], row[1]))
         _expect(not pairs, "table", sorted(pairs), "covered: pairs without an outcome")
+        derived: dict[int, set[tuple[int, int]]] = {}
+        for row in table:
+            derived.setdefault(row[3], set()).add((row[0], row[1]))
+        _check_predecessors(state, derived)
 
     def set_state(self, state: dict) -> None:
         """Inverse of :meth:`get_state`."""
@@ -317,6 +339,11 @@ class CountsModel(_PairIndex):
                 seen.add((out[0], out[1]))
             pairs.discard((row[0], row[1]))
         _expect(not pairs, "table", sorted(pairs), "covered: pairs without outcomes")
+        derived: dict[int, set[tuple[int, int]]] = {}
+        for row in table:
+            for out in row[2]:
+                derived.setdefault(out[0], set()).add((row[0], row[1]))
+        _check_predecessors(state, derived)
 
     def set_state(self, state: dict) -> None:
         """Inverse of :meth:`get_state`."""
