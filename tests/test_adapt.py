@@ -644,3 +644,16 @@ def test_docstring_examples_run() -> None:
     import tdkit.envs.adapters as module
 
     assert doctest.testmod(module, optionflags=doctest.ELLIPSIS).failed == 0
+
+
+def test_the_adapter_never_replaces_its_own_step_method():
+    """The flavour's step function is an attribute; ``step`` stays the class method."""
+    import gymnasium as gym
+
+    from tdkit.envs.adapters import EnvAdapter
+
+    env = EnvAdapter(gym.make("FrozenLake-v1"))
+    env.reset(seed=0)
+    env.step(0)
+    assert "step" not in vars(env)
+    assert type(env).step is EnvAdapter.step

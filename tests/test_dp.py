@@ -20,6 +20,7 @@ from hypothesis.extra import numpy as hnp
 
 from tdkit._errors import InvalidParameterError
 from tdkit.dp import (
+    ConvergenceError,
     Solution,
     action_values,
     bellman_expectation_operator,
@@ -217,10 +218,10 @@ def test_value_iteration_error_bound_on_a_textbook_problem():
     assert value_iteration(mdp, tol=1.0).iterations < value_iteration(mdp, tol=1e-4).iterations
 
 
-def test_value_iteration_warns_when_capped():
-    with pytest.warns(RuntimeWarning, match="max_iterations=3"):
-        sol = value_iteration(gridworld_5x5(), max_iterations=3)
-    assert sol.iterations == 3
+def test_value_iteration_refuses_to_stop_early_at_the_cap():
+    # The stated bound does not hold after 3 sweeps, so no Solution is returned.
+    with pytest.raises(ConvergenceError, match=r"max_iterations=3.*policy_iteration"):
+        value_iteration(gridworld_5x5(), max_iterations=3)
 
 
 def test_value_iteration_gamma_zero_is_one_sweep():

@@ -401,7 +401,7 @@ def test_frozen_lake_greedy_optimal_policy_earns_v_star_in_gymnasium():
     ids=["gridworld", "garnet", "cliff"],
 )
 def test_to_env_passes_gymnasium_env_checker(mdp):
-    env = mdp.to_env(max_steps=50)
+    env = mdp.to_env(max_episode_steps=50)
     assert isinstance(env, gym.Env)
     check_env(env, skip_render_check=True)
     assert env.unwrapped.gamma == mdp.gamma
@@ -459,11 +459,11 @@ def test_to_env_samples_the_model_distribution():
 
 
 def test_to_env_termination_and_truncation():
-    env = _starting_at(gridworld_4x4(), 1).to_env(max_steps=3)  # next to corner 0
+    env = _starting_at(gridworld_4x4(), 1).to_env(max_episode_steps=3)  # next to corner 0
     assert env.reset(seed=0)[0] == 1
     obs, reward, terminated, truncated, _ = env.step(3)  # left
     assert (obs, reward, terminated, truncated) == (0, -1.0, True, False)
-    env = _starting_at(gridworld_4x4(), 5).to_env(max_steps=3)
+    env = _starting_at(gridworld_4x4(), 5).to_env(max_episode_steps=3)
     env.reset(seed=0)
     results = [env.step(0)[2:4] for _ in range(3)]  # up, up (wall), up (wall)
     assert results == [(False, False), (False, False), (False, True)]
@@ -476,8 +476,8 @@ def test_to_env_rejects_bad_use():
     env.reset(seed=0)
     with pytest.raises(InvalidParameterError, match=r"integer in \[0, 4\); got 4"):
         env.step(4)
-    with pytest.raises(InvalidParameterError, match="max_steps"):
-        gridworld_4x4().to_env(max_steps=0)
+    with pytest.raises(InvalidParameterError, match="max_episode_steps"):
+        gridworld_4x4().to_env(max_episode_steps=0)
 
 
 def test_to_env_gives_a_finite_mdp_env():

@@ -106,6 +106,23 @@ def test_a_sweep_draws_one_labelled_curve_with_a_band_per_setting(sweep_result):
     assert len(plot_returns(sweep_result[0]).lines) == 1
 
 
+def test_failed_runs_of_a_recorded_sweep_are_left_out_of_the_curves():
+    # QLearning refuses step_size=1.5 at construction, so every run of that setting fails.
+    make_env = functools.partial(gridworld_4x4().to_env, 50)
+    result = run_sweep(agent_factory(tdkit.QLearning), make_env, seeds=range(2), episodes=6,
+                       settings=[{"step_size": 0.5}, {"step_size": 1.5}, {"step_size": 0.1}],
+                       max_workers=1, on_error="record")
+    ax = plot_returns(result, window=2)
+    assert _labels(ax) == ["step_size=0.5", "step_size=0.1"]
+    runs = np.stack([run.returns for run in result.runs_for(2)])
+    np.testing.assert_allclose(ax.lines[1].get_ydata(), moving_average(runs, 2).mean(axis=0))
+    assert _labels(plot_returns(result, label=["a", "b", "c"])) == ["a", "c"]
+    only_failed = run_sweep(agent_factory(tdkit.QLearning), make_env, seeds=[0], episodes=2,
+                            settings={"step_size": [1.5]}, max_workers=1, on_error="record")
+    with pytest.raises(InvalidParameterError, match="no finished run to draw"):
+        plot_returns(only_failed)
+
+
 def test_curves_go_on_a_given_axes_and_a_dict_labels_them():
     fig, ax = plt.subplots()
     out = plot_returns({"a": [[0.0, 1.0], [1.0, 2.0]], "b": _history([5.0, 6.0])}, ax=ax,

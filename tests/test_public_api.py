@@ -15,6 +15,7 @@ CONTRACT = [
     "policy_iteration", "evaluate_policy", "bellman_residual", "train", "evaluate", "save",
     "load", "verify", "testing", "envs", "schedules", "exploration", "encoders",
 ]
+CONTRACT += ["DifferentialQLearning", "DifferentialSarsa", "DifferentialTD", "relative_value_iteration", "policy_gain"]  # noqa: E501
 
 
 def test_all_lists_exactly_the_public_names():

@@ -13,13 +13,16 @@ from scipy import stats as sps
 
 from tdkit import InvalidParameterError
 from tdkit.stats import (
+    ScoreSummary,
     betainc,
+    bootstrap_band,
     bootstrap_ci,
     chi2_sf,
     gammaincc,
     iqm,
     mean,
     student_t_sf,
+    summarize_scores,
     welch_test,
 )
 
@@ -216,3 +219,37 @@ def test_bootstrap_accepts_a_vectorised_callable():
 def test_bootstrap_rejects_bad_input_naming_it(kwargs, match):
     with pytest.raises(InvalidParameterError, match=match):
         bootstrap_ci(**kwargs)
+
+
+# ---------------------------------------------------------------- one bootstrap, one summary
+def test_the_band_at_each_point_is_the_bootstrap_ci_of_that_column():
+    # bootstrap_band and bootstrap_ci draw their resamples through one function, so with
+    # the same seed the band at point j is exactly the percentile interval of the mean of
+    # column j (Efron & Tibshirani 1993, Chapter 13), up to the summation order.
+    curves = np.random.default_rng(4).normal(size=(7, 5)).cumsum(axis=1)
+    low, high = bootstrap_band(curves, confidence=0.9, n_resamples=300, seed=11)
+    for j in range(curves.shape[1]):
+        ci = bootstrap_ci(curves[:, j], "mean", confidence=0.9, n_resamples=300, seed=11)
+        assert (low[j], high[j]) == pytest.approx((ci.low, ci.high), rel=1e-12, abs=1e-12)
+    with pytest.raises(InvalidParameterError, match=r"shape \(runs, points\)"):
+        bootstrap_band(np.zeros(4))
+    with pytest.raises(InvalidParameterError, match="at least 2"):
+        bootstrap_band(np.zeros((1, 4)))
+
+
+@settings(max_examples=50)
+@given(samples)
+def test_summarize_scores_is_bootstrap_ci_and_numpy(values):
+    summary = summarize_scores(values, label="A", n_resamples=200, seed=5)
+    assert isinstance(summary, ScoreSummary) and summary.n_runs == len(values)
+    assert summary.scores == tuple(float(v) for v in values)
+    assert summary.mean == bootstrap_ci(values, "mean", n_resamples=200, seed=5)
+    assert summary.iqm == bootstrap_ci(values, "iqm", n_resamples=200, seed=5)
+    assert summary.std == pytest.approx(np.std(values, ddof=1), rel=1e-9, abs=1e-9)
+
+
+def test_one_score_has_an_estimate_but_no_interval():
+    one = summarize_scores([2.5], setting_index=3, setting={"n": 2})
+    assert (one.mean.estimate, one.iqm.estimate, one.setting_index, one.setting) == (
+        2.5, 2.5, 3, {"n": 2})
+    assert math.isnan(one.mean.low) and math.isnan(one.std)

@@ -344,3 +344,29 @@ def test_progress_bar_runs():
     pytest.importorskip("tqdm")
     result = run_sweep(MAKE_Q, MAKE_ENV, seeds=[0, 1], episodes=2, max_workers=1, progress=True)
     assert len(result) == 2
+
+
+# ---------------------------------------------------------------- one seed path
+def test_a_sweep_and_compare_performance_give_the_same_runs_for_the_same_seeds():
+    # compare_performance runs A as stream 0 and B as stream 1 of each seed
+    # (derive_seeds); a sweep runs setting i as stream i. So a sweep whose two settings
+    # are A's and B's factories' keywords repeats both agents' runs exactly.
+    good = agent_factory(tdkit.QLearning, step_size=0.5, exploration=0.1)
+    slow = agent_factory(tdkit.QLearning, step_size=0.05, exploration=0.1)
+    comparison = tdkit.verify.compare_performance(good, slow, MAKE_ENV, range(3), episodes=15,
+                                                  eval_episodes=4, max_episode_steps=100)
+    sweep = run_sweep(MAKE_Q, MAKE_ENV, seeds=range(3), episodes=15, eval_episodes=4,
+                      max_episode_steps=100, max_workers=1,
+                      settings=[{"step_size": 0.5}, {"step_size": 0.05}])
+    assert comparison.a.scores == tuple(sweep.scores()[0])
+    assert comparison.b.scores == tuple(sweep.scores()[1])
+    # And A alone, swept over the same seeds, is A's sample.
+    alone = run_sweep(good, MAKE_ENV, seeds=range(3), episodes=15, eval_episodes=4,
+                      max_episode_steps=100, max_workers=1)
+    assert tuple(alone.scores()[0]) == comparison.a.scores
+    # One summary type: the comparison's and the sweep's summaries are the same object kind
+    # and the same numbers for the same scores.
+    row = sweep.summary(n_resamples=2000, seed=0)[0]
+    assert type(row) is type(comparison.a)
+    assert (row.mean, row.iqm, row.scores) == (comparison.a.mean, comparison.a.iqm,
+                                               comparison.a.scores)

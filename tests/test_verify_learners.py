@@ -57,7 +57,9 @@ def learner_factory(name):
     return make
 
 
-LEARNERS = sorted(tdkit.learners.__all__)
+# Average-reward learners are checked by tdkit.verify._average_checks (issue 12) until
+# verify_agent knows them.
+LEARNERS = sorted(n for n in tdkit.learners.__all__ if not n.startswith("Differential"))
 
 
 @pytest.mark.parametrize("level", ["quick", "full"])

@@ -15,7 +15,9 @@ from ._errors import (
     TdkitError,
 )
 from .agent import Agent, TabularAgent
+from .agent_greedy import agent_policy
 from .dp import (
+    ConvergenceError,
     GreedyPolicy,
     Solution,
     action_values,
@@ -27,10 +29,15 @@ from .dp import (
     policy_iteration,
     value_iteration,
 )
+from .dp_average import AverageSolution, policy_gain, relative_value_iteration
+from .dp_solve import solve
 from .envs.finite import FiniteMDP
 from .history import History
 from .learners import (
     TD0,
+    DifferentialQLearning,
+    DifferentialSarsa,
+    DifferentialTD,
     DoubleQLearning,
     DynaQ,
     DynaQPlus,
@@ -70,6 +77,9 @@ __all__ = [
     # prediction
     "TD0",
     "TDLambda",
+    # average reward (continuing tasks)
+    "DifferentialQLearning", "DifferentialSarsa", "DifferentialTD",
+    "AverageSolution", "policy_gain", "relative_value_iteration",
     # training and persistence
     "History",
     "evaluate",
@@ -81,12 +91,14 @@ __all__ = [
     "GreedyPolicy",
     "Solution",
     "action_values",
+    "agent_policy",
     "bellman_expectation_operator",
     "bellman_optimality_operator",
     "bellman_residual",
     "evaluate_policy",
     "greedy_policy",
     "policy_iteration",
+    "solve",
     "value_iteration",
     # modules
     "batch",
@@ -102,6 +114,7 @@ __all__ = [
     "verify",
     # errors
     "CapacityError",
+    "ConvergenceError",
     "EnvironmentProtocolError",
     "InvalidParameterError",
     "StoreError",

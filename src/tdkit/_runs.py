@@ -1,10 +1,21 @@
-"""Independent training runs: the pieces shared by :mod:`tdkit.sweep` and
+r"""Independent training runs: the pieces shared by :mod:`tdkit.sweep` and
 :func:`tdkit.verify.compare_performance`.
 
 A *run* builds a fresh environment and agent, trains the agent and,
 optionally, scores it with greedy episodes. Runs share nothing, so they can go
 to any :class:`concurrent.futures.Executor`; :func:`train_run` is module level
 so process pools can pickle it (the factories it receives must pickle too).
+
+Seeds take one path (:func:`run_seeds`): a run is named by its seed and its
+*stream* (the index of its setting in a sweep; 0 for agent A and 1 for agent
+B in a comparison), so the same factory, seed and stream give the same run in
+a sweep and in a comparison.
+
+References
+----------
+.. [1] O'Neill, M. E. and the numpy developers: ``numpy.random.SeedSequence``
+   (independent streams from an entropy value and a spawn key), numpy
+   documentation, "Parallel random number generation".
 """
 
 from __future__ import annotations
@@ -12,7 +23,7 @@ from __future__ import annotations
 import numbers
 from collections.abc import Callable, Iterable, Mapping
 from multiprocessing.reduction import ForkingPickler
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 
@@ -20,7 +31,68 @@ from ._errors import InvalidParameterError
 from .history import History
 from .loop import evaluate, train
 
-__all__ = ["check_callable", "check_executor", "check_picklable", "check_seeds", "train_run"]
+__all__ = [
+    "RunSeeds",
+    "run_seeds",
+    "train_run",
+    "seeded_run",
+    "check_callable",
+    "check_executor",
+    "check_picklable",
+    "check_seeds",
+]
+
+
+class RunSeeds(NamedTuple):
+    """The seeds of one run: the agent's seed and the roots of its episode seeds."""
+
+    agent: int
+    train: np.random.SeedSequence
+    evaluate: np.random.SeedSequence
+
+
+def run_seeds(seed: int, stream: int = 0) -> RunSeeds:
+    """The seeds of the run (``seed``, ``stream``): the one seed path of every run.
+
+    The run's root is ``SeedSequence(seed, spawn_key=(stream,))``; its three
+    children give the agent seed (an int) and the roots of the training and
+    evaluation episode seeds. Every run is reproducible on its own, and runs
+    of different streams with one seed draw independent streams.
+
+    Examples
+    --------
+    >>> seeds = run_seeds(3, 0)
+    >>> seeds.agent == run_seeds(3).agent != run_seeds(3, 1).agent
+    True
+    """
+    root = np.random.SeedSequence(seed, spawn_key=(stream,))
+    agent_child, train_root, eval_root = root.spawn(3)
+    return RunSeeds(int(agent_child.generate_state(1, dtype=np.uint32)[0]), train_root,
+                    eval_root)
+
+
+def seeded_run(
+    make_agent: Callable[..., Any],
+    make_env: Callable[[], Any],
+    seed: int,
+    stream: int,
+    episodes: int | None,
+    steps: int | None,
+    max_episode_steps: int | None,
+    eval_episodes: int,
+    setting: Mapping[str, Any] | None = None,
+) -> tuple[int, History, np.ndarray | None]:
+    """:func:`train_run` with the seeds of :func:`run_seeds` ``(seed, stream)``.
+
+    Returns ``(agent_seed, history, eval_returns)``. Module level, so process
+    pools can pickle it.
+    """
+    seeds = run_seeds(seed, stream)
+    history, eval_returns = train_run(
+        make_agent, make_env, seeds.agent, seeds.train, seeds.evaluate, episodes, steps,
+        max_episode_steps, eval_episodes, setting,
+    )
+    return seeds.agent, history, eval_returns
 
 
 def train_run(

@@ -144,6 +144,7 @@ class TabularAgent:
         self._pending: list[Transition] = []
         self.steps_ = 0
         self.episodes_ = 0
+        self._steps_at_episode_end = 0
 
     # ------------------------------------------------------------------ set-up
     def _init_tables(self, initial_value: InitialValue) -> None:
@@ -355,18 +356,65 @@ class TabularAgent:
             transition = pending.pop()
             errors = self._learn(transition)
             if transition[4] or transition[5]:
-                self.episodes_ += 1
-                self._end_episode()
+                self._close_episode(self.steps_)
             return errors
         out: list[float] = []
         batch = pending[:]
         pending.clear()
-        for transition in batch:
+        last = len(batch) - 1
+        for i, transition in enumerate(batch):
             out.extend(self._learn(transition))
             if transition[4] or transition[5]:
-                self.episodes_ += 1
-                self._end_episode()
+                self._close_episode(self.steps_ - (last - i))
         return tuple(out)
+
+    def end_episode(self) -> tuple[float, ...]:
+        """Settle an episode that stopped without ``terminated`` or ``truncated``.
+
+        A step budget, a callback or an exception can stop an episode between
+        two steps. The episode is then settled as a time-limit truncation at
+        the last observed transition: pending transitions are applied (the
+        last one as ``truncated=True``), multi-step returns still in the
+        buffer are completed with a bootstrap from the last next state, and
+        traces, buffers and a committed next action are cleared. Nothing of
+        the episode reaches the next one. :func:`tdkit.train` calls this
+        whenever it stops mid-episode; call it yourself in a hand-written
+        loop that abandons an episode.
+
+        Returns
+        -------
+        tuple of float
+            The TD errors of the updates this applied (``()`` when there was
+            nothing to settle, as after ``terminated`` or ``truncated``).
+
+        Examples
+        --------
+        >>> from tdkit import NStepSarsa
+        >>> agent = NStepSarsa(3, 1, n=3, gamma=1.0, step_size=1.0, seed=0)
+        >>> agent.observe(0, 0, 1.0, 1, False, False); agent.update()
+        ()
+        >>> agent.end_episode()   # G = 1 + Q(1, 0) = 1: bootstrapped, not dropped
+        (1.0,)
+        >>> agent.end_episode()   # already settled
+        ()
+        """
+        pending = self._pending
+        if pending:
+            last = pending[-1]
+            if not (last[4] or last[5]):
+                pending[-1] = (*last[:5], True, last[6])
+            return self.update()
+        if self.steps_ == self._steps_at_episode_end:
+            return ()
+        errors = self._settle_cut()
+        self._close_episode(self.steps_)
+        return errors
+
+    def _close_episode(self, steps: int) -> None:
+        """Count an episode that ended after the ``steps``-th observed transition."""
+        self.episodes_ += 1
+        self._steps_at_episode_end = steps
+        self._end_episode()
 
     # ------------------------------------------------------------ for subclasses
     def _learn(self, transition: Transition) -> tuple[float, ...]:
@@ -374,6 +422,14 @@ class TabularAgent:
 
     def _end_episode(self) -> None:
         """Hook called after the last transition of an episode was learned."""
+
+    def _settle_cut(self) -> tuple[float, ...]:
+        """Complete what an episode cut after its last learned transition left open.
+
+        One-step learners have nothing open (their last update already
+        bootstrapped); multi-step learners flush their buffer with a bootstrap.
+        """
+        return ()
 
     def _td_step(
         self, values: np.ndarray, visits: np.ndarray, s: int, a: int, target: float

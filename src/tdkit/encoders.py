@@ -51,6 +51,7 @@ from typing import Any, ClassVar, Protocol, runtime_checkable
 import numpy as np
 
 from ._errors import CapacityError, InvalidParameterError
+from ._text import short as _short
 from ._validation import check_positive_int
 
 __all__ = [
@@ -69,7 +70,6 @@ __all__ = [
 
 # Tables are numpy arrays indexed by int64; a state count beyond this cannot be a table.
 _MAX_STATES = 2**62
-_REPR_LIMIT = 200
 
 
 @runtime_checkable
@@ -888,8 +888,3 @@ def _state_from_json(value: Any) -> Any:
     if isinstance(value, list):
         return tuple(_state_from_json(v) for v in value)
     return value
-
-
-def _short(x: Any) -> str:
-    text = repr(x)
-    return text if len(text) <= _REPR_LIMIT else text[: _REPR_LIMIT - 3] + "..."

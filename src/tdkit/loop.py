@@ -9,64 +9,39 @@ bounded-memory statistics.
 
 from __future__ import annotations
 
+import logging
+import os
+import time
 from collections.abc import Callable, Iterable
+from pathlib import Path
 from typing import Any
 
+import gymnasium
 import numpy as np
 
 from ._errors import InvalidParameterError
+from ._progress import progress_bar
 from ._validation import check_positive_int
 from .envs import adapt
 from .history import History
+from .runs.episode import run_episode
+from .runs.fit import check_agent_fits
+from .runs.seeds import episode_seed, root_sequence
+from .runs.vector import train_vector
 
 __all__ = ["episode_seed", "evaluate", "train"]
+
+_log = logging.getLogger("tdkit")
+
+#: Steps after which an episode run under an ``episodes=`` budget (no time
+#: limit) triggers one :class:`~tdkit.runs.EndlessEpisodeWarning`.
+_ENDLESS_STEPS = 1_000_000
 
 #: A callback receives the History so far and the agent after each episode;
 #: returning True stops training.
 Callback = Callable[[History, Any], Any]
 
 
-def episode_seed(root: np.random.SeedSequence, episode: int) -> int:
-    """The environment seed of episode ``episode`` of a run seeded by ``root``.
-
-    A pure function of the root entropy and the episode index, so a resumed run
-    draws the same seeds as an uninterrupted one.
-    """
-    child = np.random.SeedSequence(root.entropy, spawn_key=(*root.spawn_key, episode))
-    return int(child.generate_state(1, dtype=np.uint32)[0])
-
-
-def _info_mask(info: dict[str, Any] | None) -> np.ndarray | None:
-    """The action mask in ``info`` as a boolean array (None when absent)."""
-    if not info:
-        return None
-    mask = info.get("action_mask")
-    if mask is None or (type(mask) is np.ndarray and mask.dtype == np.bool_):
-        return mask
-    arr = np.asarray(mask)
-    if arr.dtype.kind in "iu":  # gymnasium's int8 masks: nonzero means allowed
-        return arr != 0
-    return arr  # let the agent's own check report anything stranger
-
-
-def _root(seed: int | np.random.SeedSequence | None) -> np.random.SeedSequence:
-    if isinstance(seed, np.random.SeedSequence):
-        return seed
-    if seed is not None and (isinstance(seed, bool) or not isinstance(seed, (int, np.integer))):
-        raise InvalidParameterError(
-            f"train/evaluate: seed must be an int, a SeedSequence or None; got {seed!r}."
-        )
-    return np.random.SeedSequence(seed)
-
-
-def _progress_bar(total: int | None, enabled: bool) -> Any:
-    if not enabled:
-        return None
-    try:
-        from tqdm.auto import tqdm
-    except ImportError as exc:  # pragma: no cover - depends on the environment
-        raise ImportError("progress=True needs tqdm: pip install 'tdkit[progress]'") from exc
-    return tqdm(total=total, unit="episode")
 
 
 def train(
@@ -83,7 +58,7 @@ def train(
     resume: Any = None,
     use_action_masks: bool = True,
     checkpoint_every: int = 100,
-) -> History:
+) -> History | list[History]:
     """Train ``agent`` on ``env`` and return the per-episode :class:`History`.
 
     Each step runs ``act -> env.step -> observe -> update``. The action mask
@@ -92,11 +67,17 @@ def train(
 
     Parameters
     ----------
-    agent : Agent
-        Any object with ``act``, ``observe`` and ``update``.
+    agent : Agent or list of Agent
+        Any object with ``act``, ``observe`` and ``update``; a list with one
+        agent per sub-environment when ``env`` is a vector environment.
     env : environment
         Anything :func:`tdkit.envs.adapt` accepts (gymnasium env or id,
-        legacy gym-style, dm_env-style, or a plain reset/step object).
+        legacy gym-style, dm_env-style, or a plain reset/step object), or a
+        ``gymnasium.vector.VectorEnv`` (both autoreset modes, next step and
+        same step; see :mod:`tdkit.runs.vector`): agent ``k`` then trains on
+        sub-environment ``k`` exactly as ``train(agents[k], env,
+        seed=tdkit.runs.agent_roots(seed, K)[k])`` would, and ``episodes`` and
+        ``steps`` are budgets per agent.
     episodes, steps : int, optional
         Stop after this many episodes or environment steps, whichever comes
         first; at least one is required. An episode cut by ``steps`` is
@@ -131,6 +112,8 @@ def train(
     Returns
     -------
     History
+        Or, for a ``gymnasium.vector.VectorEnv``, a list with one History per
+        sub-environment.
 
     Raises
     ------
@@ -149,68 +132,115 @@ def train(
     if max_episode_steps is not None:
         max_episode_steps = check_positive_int("train", "max_episode_steps", max_episode_steps)
     checkpoint_every = check_positive_int("train", "checkpoint_every", checkpoint_every)
+    if isinstance(env, gymnasium.vector.VectorEnv):
+        extras = {"checkpoint": checkpoint, "resume": resume, "callbacks": tuple(callbacks),
+                  "progress": progress}
+        given = [k for k, v in extras.items() if v not in (None, (), False)]
+        if given:
+            raise InvalidParameterError(
+                f"train: {', '.join(given)} cannot be used with a vector environment; train "
+                "each agent on its own environment for those features."
+            )
+        agents = [agent] if not isinstance(agent, (list, tuple)) else agent
+        return train_vector(
+            agents, env, episodes=episodes, steps=steps, seed=seed,
+            max_episode_steps=max_episode_steps, use_action_masks=use_action_masks,
+        )
     env = adapt(env)
-    root = _root(seed)
+    check_agent_fits(agent, env, owner="train")
+    if checkpoint is not None:
+        _check_checkpoint_folder(checkpoint)
+    root = root_sequence(seed, owner="train")
     callbacks = tuple(callbacks)
     history = History()
     total = 0
     episode = 0
     if resume is not None:
         root, episode, total, history = _resume(resume, agent, root, seed)
-    bar = _progress_bar(episodes, progress)
+    by_steps = steps is not None
+    bar = progress_bar("train", steps if by_steps else episodes, progress,
+                       unit="step" if by_steps else "episode")
+    warn_after = _ENDLESS_STEPS if (not by_steps and max_episode_steps is None) else None
     end = "terminated"  # how the last episode ended
-    act, observe, update, step_env = agent.act, agent.observe, agent.update, env.step
+    started = time.perf_counter()
     try:
         while (episodes is None or episode < episodes) and (steps is None or total < steps):
-            obs, info = env.reset(seed=episode_seed(root, episode))
-            mask = _info_mask(info) if use_action_masks else None
-            ret = 0.0
-            length = 0
-            td_n = 0
-            td_sum = 0.0
-            td_max = 0.0
-            end = "unfinished"
-            while True:
-                action = act(obs, mask=mask)
-                next_obs, reward, terminated, truncated, info = step_env(action)
-                length += 1
-                if max_episode_steps is not None and length >= max_episode_steps:
-                    truncated = True
-                next_mask = _info_mask(info) if use_action_masks else None
-                observe(obs, action, reward, next_obs, terminated, truncated, next_mask=next_mask)
-                for err in update():
-                    err = abs(err)
-                    td_sum += err
-                    if err > td_max:
-                        td_max = err
-                    td_n += 1
-                ret += reward
-                if terminated or truncated:
-                    end = "terminated" if terminated else "truncated"
-                    break
-                if steps is not None and total + length >= steps:
-                    break
-                obs, mask = next_obs, next_mask
-            total += length
-            history.add_episode(
-                ret=float(ret), length=length, end=end, td_count=td_n, td_abs_sum=td_sum,
-                td_abs_max=td_max,
+            result = run_episode(
+                agent, env, env_seed=episode_seed(root, episode),
+                max_episode_steps=max_episode_steps,
+                step_budget=None if steps is None else steps - total,
+                use_action_masks=use_action_masks, warn_after=warn_after,
+                episode_index=episode,
             )
+            if warn_after is not None and result.length >= warn_after:
+                warn_after = None  # warn once per run
+            end = result.end
+            total += result.length
+            history.add_episode(
+                ret=result.total_reward, length=result.length, end=end,
+                td_count=result.td_count, td_abs_sum=result.td_abs_sum,
+                td_abs_max=result.td_abs_max,
+            )
+            if _log.isEnabledFor(logging.DEBUG):
+                _log.debug(
+                    "episode %d: return %.6g, %d steps, %s, %.3g s", episode,
+                    result.total_reward, result.length, end, result.seconds,
+                )
             episode += 1
             if bar is not None:
-                bar.update(1)
+                bar.update(result.length if by_steps else 1)
             # Checkpoints are taken at episode boundaries only: a resumed run then
             # starts a fresh episode exactly where the uninterrupted run would.
             if checkpoint is not None and end != "unfinished" and episode % checkpoint_every == 0:
                 _checkpoint(checkpoint, agent, root, episode, total, history)
             if any([bool(cb(history, agent)) for cb in callbacks]):
                 break
+    except BaseException as exc:
+        _attach_history(exc, history)
+        raise
     finally:
         if bar is not None:
             bar.close()
     if checkpoint is not None and end != "unfinished" and episode % checkpoint_every != 0:
         _checkpoint(checkpoint, agent, root, episode, total, history)
+    _log.info(
+        "trained %s for %d episodes (%d steps) in %.3g s; mean return of the last %d: %.6g",
+        type(agent).__name__, len(history), total, time.perf_counter() - started,
+        min(len(history), 100), _recent_mean(history),
+    )
     return history
+
+
+def _recent_mean(history: History, window: int = 100) -> float:
+    returns = history.returns
+    return float(np.mean(returns[-window:])) if len(returns) else float("nan")
+
+
+def _attach_history(exc: BaseException, history: History) -> None:
+    """Give an exception escaping ``train`` the History of the episodes that finished."""
+    try:
+        exc.history = history  # type: ignore[attr-defined]
+    except (AttributeError, TypeError):  # pragma: no cover - exceptions with __slots__
+        return
+    if hasattr(exc, "add_note"):
+        exc.add_note(
+            f"tdkit.train: {len(history)} episodes had finished; their History is attached "
+            "to this exception as .history"
+        )
+
+
+def _check_checkpoint_folder(path: Any) -> None:
+    folder = Path(path).expanduser().resolve().parent
+    if not folder.is_dir():
+        raise InvalidParameterError(
+            f"train: checkpoint={str(path)!r} is in the folder {str(folder)!r}, which does not "
+            "exist; create it first or choose another path."
+        )
+    if not os.access(folder, os.W_OK):
+        raise InvalidParameterError(
+            f"train: checkpoint={str(path)!r} is in the folder {str(folder)!r}, which is not "
+            "writable; choose another path."
+        )
 
 
 def _checkpoint(
@@ -284,23 +314,17 @@ def evaluate(
     if max_episode_steps is not None:
         max_episode_steps = check_positive_int("evaluate", "max_episode_steps", max_episode_steps)
     env = adapt(env)
-    root = _root(seed)
+    check_agent_fits(agent, env, owner="evaluate")
+    root = root_sequence(seed, owner="evaluate")
     returns = np.empty(episodes)
+    warn_after = _ENDLESS_STEPS if max_episode_steps is None else None
     for episode in range(episodes):
-        obs, info = env.reset(seed=episode_seed(root, episode))
-        mask = _info_mask(info) if use_action_masks else None
-        ret = 0.0
-        length = 0
-        while True:
-            obs, reward, terminated, truncated, info = env.step(
-                agent.act(obs, mask=mask, explore=False)
-            )
-            ret += reward
-            length += 1
-            if terminated or truncated:
-                break
-            if max_episode_steps is not None and length >= max_episode_steps:
-                break
-            mask = _info_mask(info) if use_action_masks else None
-        returns[episode] = ret
+        result = run_episode(
+            agent, env, env_seed=episode_seed(root, episode), learn=False,
+            max_episode_steps=max_episode_steps, use_action_masks=use_action_masks,
+            warn_after=warn_after, episode_index=episode,
+        )
+        if warn_after is not None and result.length >= warn_after:
+            warn_after = None
+        returns[episode] = result.total_reward
     return returns

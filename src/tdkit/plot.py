@@ -29,12 +29,13 @@ from typing import Any
 import numpy as np
 
 from ._errors import InvalidParameterError
+from ._results import RunRecord, SweepResult, setting_label
 from ._seeding import SeedLike, as_generator
 from ._validation import check_in_range, check_positive_int
 from .envs.finite import FiniteMDP
 from .envs.problems import KING_ACTIONS
 from .history import History
-from .sweep import RunRecord, SweepResult, setting_label
+from .stats import bootstrap_band
 
 __all__ = ["plot_returns", "plot_values", "moving_average"]
 
@@ -124,11 +125,17 @@ def _runs(owner: str, data: Any, where: str) -> np.ndarray:
 def _series(owner: str, data: Any, label: Any) -> list[tuple[str | None, np.ndarray]]:
     """``(label, (runs, episodes) returns)`` for each curve to draw."""
     if isinstance(data, SweepResult):
-        names = [setting_label(s) for s in data.settings]
-        groups = [
-            _runs(owner, list(data.runs_for(i)), f"the runs of setting {names[i]}")
-            for i in range(len(data.settings))
-        ]
+        # Settings without a finished run (failed or missing runs) draw no curve.
+        finished = [[run for run in data.runs_for(i) if not run.failed]
+                    for i in range(len(data.settings))]
+        kept = [i for i, runs in enumerate(finished) if runs]
+        if not kept:
+            raise InvalidParameterError(
+                f"{owner}: the sweep has no finished run to draw; look at result.failures."
+            )
+        names = [setting_label(data.settings[i]) for i in kept]
+        groups = [_runs(owner, finished[i], f"the runs of setting {name}")
+                  for i, name in zip(kept, names, strict=True)]
     elif isinstance(data, Mapping):
         if not data:
             raise InvalidParameterError(f"{owner}: the dict of runs is empty; nothing to draw.")
@@ -143,7 +150,10 @@ def _series(owner: str, data: Any, label: Any) -> list[tuple[str | None, np.ndar
     if label is None:
         return list(zip(names, groups, strict=True))
     if callable(label) and isinstance(data, SweepResult):
-        names = [str(label(setting)) for setting in data.settings]
+        names = [str(label(data.settings[i])) for i in kept]
+    elif (isinstance(data, SweepResult) and isinstance(label, Sequence)
+          and not isinstance(label, str) and len(label) == len(data.settings)):
+        names = [str(label[i]) for i in kept]  # one label per setting, drawn ones kept
     elif isinstance(label, Sequence) and not isinstance(label, str) and len(label) == len(groups):
         names = [str(name) for name in label]
     else:
@@ -169,25 +179,6 @@ def moving_average(returns: np.ndarray, window: int) -> np.ndarray:
     return (cumulative[..., window:] - cumulative[..., :-window]) / window
 
 
-def _bootstrap_band(curves: np.ndarray, confidence: float, n_resamples: int,
-                    rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
-    """Percentile bootstrap interval of the mean curve, resampling whole runs.
-
-    Each resample draws ``runs`` run indices with replacement (as
-    :func:`tdkit.stats.bootstrap_ci` does for scalar scores) and averages
-    those runs' curves; the band is the ``(1 -+ c) / 2`` quantiles of the
-    resampled means at each episode (Efron & Tibshirani 1993, Chapter 13).
-    """
-    runs = curves.shape[0]
-    index = rng.integers(0, runs, size=(n_resamples, runs))
-    weights = np.zeros((n_resamples, runs))
-    np.add.at(weights, (np.arange(n_resamples)[:, None], index), 1.0 / runs)
-    means = weights @ curves
-    tail = (1.0 - confidence) / 2.0
-    low, high = np.quantile(means, [tail, 1.0 - tail], axis=0)
-    return low, high
-
-
 def plot_returns(
     data: Any,
     *,
@@ -211,7 +202,8 @@ def plot_returns(
         * several runs of one configuration: a list of those or a
           ``(runs, episodes)`` array -- one curve, the mean over runs;
         * a :class:`tdkit.sweep.SweepResult` -- one curve per setting, over
-          its seeds;
+          its seeds (failed runs are left out, and a setting without a
+          finished run draws no curve);
         * a dict ``{label: runs}`` -- one curve per entry.
 
         Runs of different lengths (a step budget ends runs after different
@@ -277,7 +269,8 @@ def plot_returns(
         x = np.arange(w, runs.shape[1] + 1)
         (line,) = ax.plot(x, curves.mean(axis=0), label=name)
         if ci and runs.shape[0] >= 2:
-            low, high = _bootstrap_band(curves, confidence, n_resamples, rng)
+            low, high = bootstrap_band(curves, confidence=confidence,
+                                       n_resamples=n_resamples, seed=rng)
             ax.fill_between(x, low, high, color=line.get_color(), alpha=0.2, linewidth=0)
     ax.set_xlabel("episode")
     ax.set_ylabel("return" if used == 1 else f"return (moving average of {used} episodes)")

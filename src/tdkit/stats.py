@@ -7,7 +7,12 @@ tests cross-check these functions against scipy).
   recommended by Agarwal et al. (2021) for scores over runs.
 * :func:`bootstrap_ci` gives percentile bootstrap confidence intervals, and the
   *stratified* bootstrap of Agarwal et al. (2021) when scores come as a
-  ``(runs, tasks)`` table (runs are resampled within each task).
+  ``(runs, tasks)`` table (runs are resampled within each task);
+  :func:`bootstrap_band` the same interval of a mean *curve* over runs, at
+  every point (both draw their resamples through one function).
+* :func:`summarize_scores` turns the scores of several runs into a
+  :class:`ScoreSummary` (mean and IQM with intervals, standard deviation): the
+  one summary type of sweeps and of agent comparisons.
 * :func:`welch_test` is Welch's unequal-variance t-test; its p-value uses the
   Student-t distribution through the regularized incomplete beta function
   (:func:`betainc`).
@@ -50,6 +55,9 @@ __all__ = [
     # intervals and tests
     "ConfidenceInterval",
     "bootstrap_ci",
+    "bootstrap_band",
+    "ScoreSummary",
+    "summarize_scores",
     "WelchResult",
     "welch_test",
     # distributions
@@ -247,13 +255,160 @@ def bootstrap_ci(
     rng = as_generator(seed, owner=owner)
     table = array.reshape(array.shape[0], -1)  # (runs, tasks)
     runs, tasks = table.shape
-    index = rng.integers(0, runs, size=(n_resamples, runs, tasks))
+    index = _resample_runs(rng, runs, n_resamples, tasks)
     resampled = np.take_along_axis(table[None, :, :], index, axis=1)
     distribution = np.asarray(stat(resampled.reshape(n_resamples, runs * tasks)), dtype=float)
     estimate = float(np.asarray(stat(table.reshape(1, -1)), dtype=float).reshape(-1)[0])
-    tail = (1.0 - confidence) / 2.0
-    low, high = np.quantile(distribution, [tail, 1.0 - tail])
+    low, high = _percentile_interval(distribution, confidence)
     return ConfidenceInterval(estimate, float(low), float(high), confidence)
+
+
+def _resample_runs(rng: np.random.Generator, runs: int, n_resamples: int,
+                   tasks: int) -> np.ndarray:
+    """Run indices drawn with replacement: shape ``(n_resamples, runs, tasks)``.
+
+    The one source of bootstrap draws (:func:`bootstrap_ci`, :func:`bootstrap_band`).
+    """
+    return rng.integers(0, runs, size=(n_resamples, runs, tasks))
+
+
+def _percentile_interval(distribution: np.ndarray, confidence: float) -> np.ndarray:
+    """The ``(1 - c) / 2`` and ``(1 + c) / 2`` quantiles along the first axis (Efron &
+    Tibshirani 1993, Chapter 13)."""
+    tail = (1.0 - confidence) / 2.0
+    return np.quantile(distribution, [tail, 1.0 - tail], axis=0)
+
+
+def bootstrap_band(
+    curves: Any,
+    *,
+    confidence: float = 0.95,
+    n_resamples: int = 2000,
+    seed: SeedLike = 0,
+) -> tuple[np.ndarray, np.ndarray]:
+    r"""Percentile bootstrap band of the mean curve over runs, at every point.
+
+    Each resample draws ``runs`` whole runs (rows) with replacement, as
+    :func:`bootstrap_ci` does for scalar scores, and averages their curves;
+    the band is the ``(1 - c) / 2`` and ``(1 + c) / 2`` quantiles of the
+    resampled means at each point (Efron & Tibshirani 1993, Chapter 13).
+    Resampling whole runs keeps the dependence between the points of a run.
+
+    Parameters
+    ----------
+    curves : array_like, shape (runs, points)
+        Finite values, at least 2 runs.
+    confidence : float, default 0.95
+    n_resamples : int, default 2000
+    seed : int, Generator or None, default 0
+
+    Returns
+    -------
+    (numpy.ndarray, numpy.ndarray)
+        Lower and upper bounds, each of shape ``(points,)``.
+
+    Examples
+    --------
+    >>> low, high = bootstrap_band([[1.0, 1.0, 1.0], [3.0, 3.0, 3.0]], seed=0)
+    >>> low.tolist(), high.tolist()   # resampled means are 1, 2 or 3
+    ([1.0, 1.0, 1.0], [3.0, 3.0, 3.0])
+    """
+    owner = "bootstrap_band"
+    table = _scores(owner, curves, min_size=2)
+    if table.ndim != 2:
+        raise InvalidParameterError(
+            f"{owner}: curves must have shape (runs, points); got shape {table.shape}."
+        )
+    confidence = check_in_range(owner, "confidence", confidence, 0.0, 1.0,
+                                low_open=True, high_open=True)
+    n_resamples = check_positive_int(owner, "n_resamples", n_resamples)
+    rng = as_generator(seed, owner=owner)
+    runs = table.shape[0]
+    index = _resample_runs(rng, runs, n_resamples, 1)[:, :, 0]
+    weights = np.zeros((n_resamples, runs))
+    np.add.at(weights, (np.arange(n_resamples)[:, None], index), 1.0 / runs)
+    low, high = _percentile_interval(weights @ table, confidence)
+    return low, high
+
+
+# ---------------------------------------------------------------- summaries of run scores
+@dataclass(frozen=True)
+class ScoreSummary:
+    """Scores of several runs of one agent or setting, and their summaries.
+
+    ``mean`` and ``iqm`` carry percentile bootstrap intervals over runs
+    (:func:`bootstrap_ci`); with a single run their bounds are NaN. ``std`` is
+    the sample standard deviation (``ddof=1``; NaN for one run).
+
+    Attributes
+    ----------
+    label : str
+        What was run (an agent's name, or a sweep setting's label).
+    scores : tuple of float
+        One score per run.
+    mean, iqm : ConfidenceInterval
+    std : float
+    setting_index : int or None
+        For a sweep: the index of the setting.
+    setting : dict or None
+        For a sweep: the setting's keyword arguments.
+    """
+
+    label: str
+    scores: tuple[float, ...]
+    mean: ConfidenceInterval
+    iqm: ConfidenceInterval
+    std: float
+    setting_index: int | None = None
+    setting: dict[str, Any] | None = None
+
+    @property
+    def n_runs(self) -> int:
+        """Number of runs summarised."""
+        return len(self.scores)
+
+
+def summarize_scores(
+    scores: Any,
+    *,
+    label: str = "",
+    confidence: float = 0.95,
+    n_resamples: int = 2000,
+    seed: SeedLike = 0,
+    setting_index: int | None = None,
+    setting: dict[str, Any] | None = None,
+) -> ScoreSummary:
+    """Mean and IQM of run scores with bootstrap intervals, and their standard deviation.
+
+    Both intervals use the same ``seed`` (so the same resamples), as
+    :meth:`tdkit.sweep.SweepResult.summary` and
+    :func:`tdkit.verify.compare_performance` report them.
+
+    Examples
+    --------
+    >>> s = summarize_scores([1.0, 2.0, 3.0, 10.0], label="A")
+    >>> s.n_runs, s.mean.estimate, s.iqm.estimate
+    (4, 4.0, 2.5)
+    >>> import math
+    >>> math.isnan(summarize_scores([5.0]).mean.low)
+    True
+    """
+    owner = "summarize_scores"
+    array = _scores(owner, scores).ravel()
+    confidence = check_in_range(owner, "confidence", confidence, 0.0, 1.0,
+                                low_open=True, high_open=True)
+    if array.size >= 2:
+        mean_ci, iqm_ci = (
+            bootstrap_ci(array, stat, confidence=confidence, n_resamples=n_resamples, seed=seed)
+            for stat in ("mean", "iqm")
+        )
+        std = float(array.std(ddof=1))
+    else:
+        value = float(array[0])
+        mean_ci = iqm_ci = ConfidenceInterval(value, math.nan, math.nan, confidence)
+        std = math.nan
+    return ScoreSummary(label, tuple(float(x) for x in array), mean_ci, iqm_ci, std,
+                        setting_index, None if setting is None else dict(setting))
 
 
 # ---------------------------------------------------------------- special functions

@@ -12,7 +12,18 @@ local processes by default, a thread pool, or a Dask distributed client's
 ``client.get_executor()`` to spread them over several machines (``dist``
 extra). The results do not depend on the executor or on the order in which
 runs finish: each run's seeds are a pure function of its seed and the index of
-its setting (:func:`derive_seeds`).
+its setting (:func:`derive_seeds`), the same seed path as
+:func:`tdkit.verify.compare_performance`.
+
+A run that fails does not lose the others: with ``on_error="raise"`` the
+:class:`SweepRunError` carries the finished runs (``.partial``), and with
+``on_error="record"`` failed runs become records with their error text while
+the rest complete. A worker process that dies is named correctly (the runs in
+flight are re-run one at a time to find it), and warnings raised in worker
+processes (such as the driver's endless-episode warning) are re-issued here.
+
+The result types live in :mod:`tdkit._results` (re-exported here), so code
+that only reads results does not import the runner.
 
 References
 ----------
@@ -21,7 +32,7 @@ References
    Precipice. Advances in Neural Information Processing Systems 34.
 .. [2] O'Neill, M. E. and the numpy developers: ``numpy.random.SeedSequence``
    (independent streams from an entropy value and a spawn key), numpy
-   documentation, "Parallel random number generation".
+   documentation, "Parallel random number generation" (see :func:`derive_seeds`).
 """
 
 from __future__ import annotations
@@ -29,26 +40,43 @@ from __future__ import annotations
 import itertools
 import math
 import os
-from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from concurrent.futures import Executor, ProcessPoolExecutor
-from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
-from ._errors import InvalidParameterError, TdkitError
-from ._runs import check_callable, check_executor, check_picklable, check_seeds, train_run
-from ._validation import check_in_range, check_positive_int
+from ._dispatch import RunFailure, RunOutcome, dispatch, reissue_warnings
+from ._errors import InvalidParameterError
+from ._factories import AgentFactory
+from ._progress import progress_bar
+from ._results import (
+    METRICS,
+    RunRecord,
+    SettingSummary,
+    SweepResult,
+    SweepRunError,
+    SweepSummary,
+    setting_label,
+)
+from ._runs import (
+    check_callable,
+    check_executor,
+    check_picklable,
+    check_seeds,
+    run_seeds,
+    seeded_run,
+)
+from ._validation import check_positive_int
 from .history import History
-from .stats import ConfidenceInterval, bootstrap_ci
-from .verify.factories import AgentFactory
 
 __all__ = [
     # running
     "run_sweep",
     "expand_settings",
     "derive_seeds",
-    # results
+    "ON_ERROR",
+    # results (defined in tdkit._results)
     "SweepResult",
     "RunRecord",
     "SweepSummary",
@@ -59,14 +87,14 @@ __all__ = [
     "SweepRunError",
 ]
 
-METRICS = ("score", "final_return", "mean_return", "eval_return")
-"""Per-run numbers that :meth:`SweepResult.summary` can summarise (see :class:`RunRecord`)."""
+ON_ERROR = ("raise", "record")
+"""What :func:`run_sweep` does when a run fails (its ``on_error`` argument)."""
 
 # Setting keys become keyword arguments of make_agent and columns of to_records(), so they
 # must differ from make_agent's own arguments and from the other columns.
 _RESERVED = frozenset({
     "env", "seed", "setting_index", "agent_seed", "episodes", "steps", "episode", "return",
-    "length", *METRICS,
+    "length", "error", *METRICS,
 })
 
 _FIX_PICKLE = (
@@ -74,33 +102,6 @@ _FIX_PICKLE = (
     "functions, tdkit.verify.agent_factory(...) or functools.partial, or run the sweep in this "
     "process with max_workers=1 (or pass executor=ThreadPoolExecutor(...))."
 )
-
-
-class SweepRunError(TdkitError, RuntimeError):
-    """A run of :func:`run_sweep` raised; the message names its setting and seed.
-
-    The exception the run raised is chained as ``__cause__``.
-
-    Attributes
-    ----------
-    setting : dict
-        The keyword arguments of the failed run.
-    setting_index : int
-        Index of the setting in :attr:`SweepResult.settings` order.
-    seed : int
-        The run's seed (one of ``seeds``).
-    """
-
-    def __init__(self, message: str, setting: dict[str, Any], setting_index: int,
-                 seed: int) -> None:
-        super().__init__(message)
-        self.setting = setting
-        self.setting_index = setting_index
-        self.seed = seed
-
-    def __reduce__(self) -> tuple[Any, ...]:
-        return type(self), (str(self), self.setting, self.setting_index, self.seed)
-
 
 
 # ---------------------------------------------------------------- settings and seeds
@@ -205,7 +206,10 @@ def derive_seeds(seed: int, setting_index: int,
     The run's root is ``SeedSequence(seed, spawn_key=(setting_index,))``; its
     three children give the agent seed (an int) and the roots of the training
     and evaluation episode seeds. So every run is reproducible on its own, and
-    runs of different settings with one seed draw independent streams.
+    runs of different settings with one seed draw independent streams. This
+    is the one seed path of tdkit's runs: :func:`tdkit.verify.compare_performance`
+    runs agent A as stream 0 and B as stream 1, so a sweep of A's factory
+    over the same seeds (one setting) repeats A's runs exactly.
 
     Examples
     --------
@@ -213,355 +217,22 @@ def derive_seeds(seed: int, setting_index: int,
     >>> agent_seed == derive_seeds(3, 0)[0] != derive_seeds(3, 1)[0]
     True
     """
-    root = np.random.SeedSequence(seed, spawn_key=(setting_index,))
-    agent_child, train_root, eval_root = root.spawn(3)
-    agent_seed = int(agent_child.generate_state(1, dtype=np.uint32)[0])
-    return agent_seed, train_root, eval_root
-
-
-def setting_label(setting: Mapping[str, Any]) -> str:
-    """A short label such as ``"step_size=0.5, n=4"`` (``"default"`` for an empty setting).
-
-    Examples
-    --------
-    >>> setting_label({"step_size": 0.5, "trace": "dutch"})
-    "step_size=0.5, trace='dutch'"
-    """
-    if not setting:
-        return "default"
-    return ", ".join(
-        f"{k}={float(v):g}" if isinstance(v, float) else f"{k}={v!r}" for k, v in setting.items()
-    )
-
-
-# ---------------------------------------------------------------- records
-@dataclass(frozen=True, eq=False)
-class RunRecord:
-    """One training run of a sweep.
-
-    Attributes
-    ----------
-    setting_index : int
-        Index of the setting in :attr:`SweepResult.settings`.
-    setting : dict
-        The keyword arguments given to ``make_agent``.
-    seed : int
-        The run's seed (one of ``seeds``); :func:`derive_seeds` gives the rest.
-    agent_seed : int
-        The seed ``make_agent`` received.
-    history : History
-        Per-episode training statistics.
-    eval_returns : numpy.ndarray or None
-        Returns of the greedy evaluation episodes (None without evaluation).
-    final_return : float
-        Mean training return over the last ``final_episodes`` episodes.
-    """
-
-    setting_index: int
-    setting: dict[str, Any]
-    seed: int
-    agent_seed: int
-    history: History
-    eval_returns: np.ndarray | None
-    final_return: float
-
-    @property
-    def returns(self) -> np.ndarray:
-        """Per-episode training returns (a copy)."""
-        return self.history.returns
-
-    @property
-    def mean_return(self) -> float:
-        """Mean training return over all episodes (the area under the learning curve)."""
-        return float(self.history.returns.mean())
-
-    @property
-    def eval_return(self) -> float:
-        """Mean greedy evaluation return (NaN without evaluation)."""
-        if self.eval_returns is None:
-            return math.nan
-        return float(self.eval_returns.mean())
-
-    @property
-    def score(self) -> float:
-        """``eval_return`` when the sweep evaluated, else ``final_return``."""
-        return self.final_return if self.eval_returns is None else self.eval_return
-
-    def __repr__(self) -> str:
-        return (
-            f"RunRecord({setting_label(self.setting)}; seed={self.seed}, "
-            f"episodes={len(self.history)}, score={self.score:.4g})"
-        )
-
-
-# ---------------------------------------------------------------- summaries
-@dataclass(frozen=True)
-class SettingSummary:
-    """Statistics of one setting's run scores.
-
-    ``mean`` and ``iqm`` carry percentile bootstrap intervals over runs; with
-    a single run their bounds are NaN. ``std`` is the sample standard
-    deviation (``ddof=1``; NaN for one run).
-    """
-
-    setting_index: int
-    setting: dict[str, Any]
-    n_runs: int
-    mean: ConfidenceInterval
-    iqm: ConfidenceInterval
-    std: float
-
-
-@dataclass(frozen=True)
-class SweepSummary:
-    """Per-setting statistics of one metric; iterate for :class:`SettingSummary` rows."""
-
-    rows: tuple[SettingSummary, ...]
-    metric: str
-    confidence: float
-
-    def __iter__(self) -> Iterator[SettingSummary]:
-        return iter(self.rows)
-
-    def __len__(self) -> int:
-        return len(self.rows)
-
-    def __getitem__(self, index: int) -> SettingSummary:
-        return self.rows[index]
-
-    def best(self, by: str = "iqm") -> SettingSummary:
-        """The row with the highest ``by`` estimate (``"iqm"`` or ``"mean"``); first on ties."""
-        if by not in ("iqm", "mean"):
-            raise InvalidParameterError(
-                f"SweepSummary.best: by must be 'iqm' or 'mean'; got {by!r}."
-            )
-        return max(self.rows, key=lambda row: getattr(row, by).estimate)
-
-    def to_records(self) -> list[dict[str, Any]]:
-        """One dict per setting: its keywords, runs, mean, IQM and their interval bounds."""
-        return [
-            {
-                "setting_index": row.setting_index,
-                **row.setting,
-                "runs": row.n_runs,
-                "mean": row.mean.estimate,
-                "mean_low": row.mean.low,
-                "mean_high": row.mean.high,
-                "iqm": row.iqm.estimate,
-                "iqm_low": row.iqm.low,
-                "iqm_high": row.iqm.high,
-                "std": row.std,
-            }
-            for row in self.rows
-        ]
-
-    def to_frame(self) -> Any:
-        """The records as a pandas DataFrame (needs the ``frame`` extra)."""
-        return _frame("SweepSummary.to_frame", self.to_records())
-
-    def __str__(self) -> str:
-        labels = [setting_label(row.setting) for row in self.rows]
-        width = max(len("setting"), *(len(label) for label in labels))
-        ci = f"{self.confidence:.0%} CI"
-        lines = [
-            f"{self.metric} by setting (mean and IQM over runs, {ci})",
-            f"  {'setting':<{width}}  runs  {'mean [' + ci + ']':<30}  IQM [{ci}]",
-        ]
-        for label, row in zip(labels, self.rows, strict=True):
-            mean = f"{row.mean.estimate:.4g} [{row.mean.low:.4g}, {row.mean.high:.4g}]"
-            iqm = f"{row.iqm.estimate:.4g} [{row.iqm.low:.4g}, {row.iqm.high:.4g}]"
-            lines.append(f"  {label:<{width}}  {row.n_runs:>4}  {mean:<30}  {iqm}")
-        return "\n".join(lines)
-
-
-def _frame(owner: str, records: list[dict[str, Any]]) -> Any:
-    try:
-        import pandas as pd
-    except ImportError as exc:  # pragma: no cover - depends on the environment
-        raise ImportError(f"{owner} needs pandas: pip install 'tdkit[frame]'") from exc
-    return pd.DataFrame.from_records(records)
-
-
-# ---------------------------------------------------------------- results
-class SweepResult:
-    """Every run of a sweep, in setting-major order (all seeds of setting 0 first).
-
-    Iterating yields :class:`RunRecord` objects; ``len`` is the number of runs.
-
-    Attributes
-    ----------
-    settings : tuple of dict
-        The expanded settings, in order.
-    seeds : tuple of int
-    runs : tuple of RunRecord
-    evaluated : bool
-        Whether runs carry a greedy evaluation (``eval_episodes > 0``).
-    """
-
-    def __init__(self, settings: Sequence[dict[str, Any]], seeds: Sequence[int],
-                 runs: Sequence[RunRecord], *, evaluated: bool) -> None:
-        self.settings = tuple(settings)
-        self.seeds = tuple(seeds)
-        self.runs = tuple(runs)
-        self.evaluated = evaluated
-
-    def __len__(self) -> int:
-        return len(self.runs)
-
-    def __iter__(self) -> Iterator[RunRecord]:
-        return iter(self.runs)
-
-    def __getitem__(self, index: int) -> RunRecord:
-        return self.runs[index]
-
-    def __repr__(self) -> str:
-        return (
-            f"SweepResult(settings={len(self.settings)}, seeds={len(self.seeds)}, "
-            f"runs={len(self.runs)}, evaluated={self.evaluated})"
-        )
-
-    def runs_for(self, setting_index: int) -> tuple[RunRecord, ...]:
-        """The runs of one setting, in ``seeds`` order."""
-        if isinstance(setting_index, bool) or not isinstance(setting_index, int) or not (
-            -len(self.settings) <= setting_index < len(self.settings)
-        ):
-            raise InvalidParameterError(
-                f"SweepResult.runs_for: setting_index must be an int in "
-                f"[0, {len(self.settings)}); got {setting_index!r}."
-            )
-        setting_index %= len(self.settings)
-        return tuple(run for run in self.runs if run.setting_index == setting_index)
-
-    def scores(self, metric: str = "score") -> np.ndarray:
-        """The metric of every run as an array of shape ``(settings, seeds)``."""
-        self._check_metric("SweepResult.scores", metric)
-        values = [getattr(run, metric) for run in self.runs]
-        return np.asarray(values, dtype=np.float64).reshape(len(self.settings), len(self.seeds))
-
-    def _check_metric(self, owner: str, metric: str) -> None:
-        if metric not in METRICS:
-            raise InvalidParameterError(
-                f"{owner}: metric must be one of {', '.join(map(repr, METRICS))}; got {metric!r}."
-            )
-        if metric == "eval_return" and not self.evaluated:
-            raise InvalidParameterError(
-                f"{owner}: metric='eval_return' needs a greedy evaluation; this sweep ran with "
-                "eval_episodes=0. Pass eval_episodes=... to run_sweep, or use 'final_return'."
-            )
-
-    def summary(
-        self,
-        metric: str = "score",
-        *,
-        confidence: float = 0.95,
-        n_resamples: int = 2000,
-        seed: int = 0,
-    ) -> SweepSummary:
-        """Mean and IQM of ``metric`` over the runs of each setting, with bootstrap CIs.
-
-        Parameters
-        ----------
-        metric : {"score", "final_return", "mean_return", "eval_return"}
-            The per-run number to summarise (see :class:`RunRecord`);
-            ``"score"`` is the evaluation return when the sweep evaluated and
-            the final training return otherwise.
-        confidence : float, default 0.95
-            In (0, 1).
-        n_resamples : int, default 2000
-            Bootstrap resamples (:func:`tdkit.stats.bootstrap_ci`).
-        seed : int, default 0
-            Seed of the bootstrap; the summary is reproducible.
-
-        Returns
-        -------
-        SweepSummary
-            One row per setting, in order.
-        """
-        owner = "SweepResult.summary"
-        self._check_metric(owner, metric)
-        confidence = check_in_range(owner, "confidence", confidence, 0.0, 1.0,
-                                    low_open=True, high_open=True)
-        n_resamples = check_positive_int(owner, "n_resamples", n_resamples)
-        table = self.scores(metric)
-        rows = []
-        for index, (setting, scores) in enumerate(zip(self.settings, table, strict=True)):
-            if not np.isfinite(scores).all():
-                raise InvalidParameterError(
-                    f"{owner}: the {metric} of setting {setting_label(setting)} is not finite "
-                    f"for some run ({scores!r:.80}); look at those runs' histories."
-                )
-            if scores.size >= 2:
-                cis = [
-                    bootstrap_ci(scores, stat, confidence=confidence, n_resamples=n_resamples,
-                                 seed=seed)
-                    for stat in ("mean", "iqm")
-                ]
-                std = float(scores.std(ddof=1))
-            else:
-                value = float(scores[0])
-                cis = [ConfidenceInterval(value, math.nan, math.nan, confidence)] * 2
-                std = math.nan
-            rows.append(SettingSummary(index, dict(setting), int(scores.size), *cis, std))
-        return SweepSummary(tuple(rows), metric, confidence)
-
-    def to_records(self, *, per_episode: bool = False) -> list[dict[str, Any]]:
-        """Flat dicts, one per run (or per run and episode with ``per_episode=True``).
-
-        Run rows hold ``setting_index``, the setting's keywords, ``seed``,
-        ``agent_seed``, ``episodes``, ``steps``, ``final_return``,
-        ``mean_return``, ``eval_return`` (NaN without evaluation) and
-        ``score``. Episode rows hold ``setting_index``, the keywords, ``seed``,
-        ``episode``, ``return`` and ``length``.
-        """
-        records = []
-        for run in self.runs:
-            head = {"setting_index": run.setting_index, **run.setting, "seed": run.seed}
-            if per_episode:
-                returns, lengths = run.history.returns, run.history.lengths
-                records.extend(
-                    {**head, "episode": i, "return": float(r), "length": int(n)}
-                    for i, (r, n) in enumerate(zip(returns, lengths, strict=True))
-                )
-                continue
-            records.append({
-                **head,
-                "agent_seed": run.agent_seed,
-                "episodes": len(run.history),
-                "steps": run.history.total_steps,
-                "final_return": run.final_return,
-                "mean_return": run.mean_return,
-                "eval_return": run.eval_return,
-                "score": run.score,
-            })
-        return records
-
-    def to_frame(self, *, per_episode: bool = False) -> Any:
-        """:meth:`to_records` as a pandas DataFrame (needs the ``frame`` extra)."""
-        return _frame("SweepResult.to_frame", self.to_records(per_episode=per_episode))
+    return tuple(run_seeds(seed, setting_index))  # type: ignore[return-value]
 
 
 # ---------------------------------------------------------------- running
-@dataclass(frozen=True)
-class _Task:
-    setting_index: int
-    setting: dict[str, Any]
-    seed: int
-
-
 def _run_task(
     make_agent: Callable[..., Any],
     make_env: Callable[[], Any],
-    task: _Task,
+    setting_index: int,
+    setting: dict[str, Any],
+    seed: int,
     options: tuple[int | None, int | None, int | None, int],
 ) -> tuple[int, History, np.ndarray | None]:
     """Run one (setting, seed) pair; module level so process pools can pickle it."""
     episodes, steps, max_episode_steps, eval_episodes = options
-    agent_seed, train_root, eval_root = derive_seeds(task.seed, task.setting_index)
-    history, eval_returns = train_run(
-        make_agent, make_env, agent_seed, train_root, eval_root, episodes, steps,
-        max_episode_steps, eval_episodes, task.setting,
-    )
-    return agent_seed, history, eval_returns
+    return seeded_run(make_agent, make_env, seed, setting_index, episodes, steps,
+                      max_episode_steps, eval_episodes, setting)
 
 
 def _default_workers() -> int:
@@ -584,6 +255,7 @@ def run_sweep(
     executor: Executor | None = None,
     max_workers: int | None = None,
     progress: bool = False,
+    on_error: str = "raise",
 ) -> SweepResult:
     """Train one agent for every (setting, seed) pair and collect the results.
 
@@ -614,7 +286,10 @@ def run_sweep(
         Training budget of each run, as in :func:`tdkit.train`; at least one
         is required.
     max_episode_steps : int, optional
-        Time limit of training and evaluation episodes.
+        Time limit of training and evaluation episodes. Give it (or a
+        ``steps`` budget) for a simulator whose episodes may never end: with
+        ``episodes`` alone such a run never finishes (the episode driver
+        warns, and the warning reaches this process).
     eval_episodes : int, default 0
         Greedy evaluation episodes after training (0: no evaluation).
     final_episodes : int, default 10
@@ -633,6 +308,12 @@ def run_sweep(
         process (no pickling, so lambdas work; handy for debugging).
     progress : bool, default False
         Show a progress bar over runs (``progress`` extra, tqdm).
+    on_error : {"raise", "record"}, default "raise"
+        What a failed run does. ``"raise"``: no new run starts, the runs in
+        flight finish, and :class:`SweepRunError` is raised with the finished
+        runs as ``.partial``. ``"record"``: the failed run becomes a
+        :class:`RunRecord` with ``error`` set (its scores are NaN; summaries
+        leave it out) and every other run completes.
 
     Returns
     -------
@@ -646,9 +327,12 @@ def run_sweep(
         On bad settings, seeds or budgets, or factories that process workers
         cannot receive (the message says how to fix it).
     SweepRunError
-        When a run raises: the message names the setting and the seed, and
-        the run's own exception is chained. The first failing run in
-        setting-major order is reported; runs not yet started are cancelled.
+        With ``on_error="raise"``, when a run raises or its worker process
+        dies: the message names the setting and the seed, the run's own
+        exception is chained, and ``.partial`` holds the finished runs. The
+        first failing run in setting-major order (among the runs that
+        started) is reported. A dead worker is found by re-running the runs
+        that were in flight one at a time, each in a fresh process.
 
     Notes
     -----
@@ -656,7 +340,9 @@ def run_sweep(
     values by pickling: use module-level functions,
     :func:`tdkit.verify.agent_factory` and :func:`functools.partial`, not
     lambdas or functions defined inside other functions. Runs do not share
-    learning state, so no run can affect another.
+    learning state, so no run can affect another. Warnings that runs raise in
+    other processes are shown there and re-issued here, prefixed with the
+    run's setting and seed, when the run ends.
 
     Examples
     --------
@@ -675,6 +361,11 @@ def run_sweep(
         make_agent = AgentFactory(make_agent)
     check_callable(owner, "make_agent", make_agent)
     check_callable(owner, "make_env", make_env)
+    if on_error not in ON_ERROR:
+        raise InvalidParameterError(
+            f"{owner}: on_error must be 'raise' or 'record'; got {on_error!r}. Use 'record' to "
+            "keep going past failed runs and find them in result.failures."
+        )
     seed_list = check_seeds(owner, seeds)
     setting_list = expand_settings(settings)
     if episodes is None and steps is None:
@@ -690,11 +381,8 @@ def run_sweep(
         max_episode_steps = check_positive_int(owner, "max_episode_steps", max_episode_steps)
     eval_episodes = check_positive_int(owner, "eval_episodes", eval_episodes, minimum=0)
     final_episodes = check_positive_int(owner, "final_episodes", final_episodes)
-    tasks = [
-        _Task(index, setting, seed)
-        for index, setting in enumerate(setting_list)
-        for seed in seed_list
-    ]
+    tasks = [(index, setting, seed) for index, setting in enumerate(setting_list)
+             for seed in seed_list]
     if executor is not None:
         check_executor(owner, executor, "submit")
         if max_workers is not None:
@@ -715,27 +403,56 @@ def run_sweep(
             for key, value in setting.items():
                 check_picklable(owner, f"settings value {key}", value, _FIX_PICKLE)
     options = (episodes, steps, max_episode_steps, eval_episodes)
-    bar = _progress_bar(len(tasks), progress)
+    calls = [(make_agent, make_env, index, setting, seed, options)
+             for index, setting, seed in tasks]
+    bar = progress_bar(owner, len(tasks), progress, unit="run")
+
+    def on_done(position: int, outcome: RunOutcome) -> None:
+        _, setting, seed = tasks[position]
+        reissue_warnings(outcome.warnings,
+                         f"run with setting {setting_label(setting)}, seed {seed}")
+        if bar is not None:
+            bar.update(1)
+
     try:
-        if workers == 1:
-            outputs = [_call(owner, _run_task, make_agent, make_env, task, options, bar)
-                       for task in tasks]
-        elif executor is not None:
-            outputs = _collect(owner, executor, make_agent, make_env, tasks, options, bar)
-        else:
-            with ProcessPoolExecutor(max_workers=workers) as pool:
-                outputs = _collect(owner, pool, make_agent, make_env, tasks, options, bar)
+        outcomes = dispatch(_run_task, calls, executor=executor, workers=workers,
+                            stop_on_failure=on_error == "raise", on_done=on_done)
     finally:
         if bar is not None:
             bar.close()
     runs = [
-        RunRecord(
-            task.setting_index, dict(task.setting), task.seed, agent_seed, history, eval_returns,
-            _final_return(history, final_episodes),
-        )
-        for task, (agent_seed, history, eval_returns) in zip(tasks, outputs, strict=True)
+        _record(task, outcome, final_episodes)
+        for task, outcome in zip(tasks, outcomes, strict=True) if outcome is not None
     ]
+    if on_error == "raise":
+        first = next(
+            ((task, outcome.failure) for task, outcome in zip(tasks, outcomes, strict=True)
+             if outcome is not None and outcome.failure is not None),
+            None,
+        )
+        if first is not None:
+            task, failure = first
+            partial = SweepResult(setting_list, seed_list,
+                                  [run for run in runs if not run.failed],
+                                  evaluated=eval_episodes > 0)
+            raise _failure(owner, task, failure, partial) from failure.exception()
     return SweepResult(setting_list, seed_list, runs, evaluated=eval_episodes > 0)
+
+
+def _record(task: tuple[int, dict[str, Any], int], outcome: RunOutcome,
+            final_episodes: int) -> RunRecord:
+    index, setting, seed = task
+    if outcome.failure is None:
+        agent_seed, history, eval_returns = outcome.value
+        return RunRecord(index, dict(setting), seed, agent_seed, history, eval_returns,
+                         _final_return(history, final_episodes))
+    failure = outcome.failure
+    exc = failure.local
+    history = getattr(exc, "history", None)
+    if not isinstance(history, History):
+        history = History()
+    return RunRecord(index, dict(setting), seed, run_seeds(seed, index).agent, history, None,
+                     math.nan, failure.error, failure.details)
 
 
 def _final_return(history: History, final_episodes: int) -> float:
@@ -743,52 +460,20 @@ def _final_return(history: History, final_episodes: int) -> float:
     return float(returns[-final_episodes:].mean()) if returns.size else math.nan
 
 
-def _failure(owner: str, task: _Task, exc: BaseException) -> SweepRunError:
+def _failure(owner: str, task: tuple[int, dict[str, Any], int], failure: RunFailure,
+             partial: SweepResult) -> SweepRunError:
+    index, setting, seed = task
+    done = f"{len(partial)} finished run{'s' if len(partial) != 1 else ''} are in .partial"
+    if failure.crashed:
+        what = failure.error
+        fix = ("A run that kills its process (out of memory, a crash in compiled code, "
+               "os._exit) cannot be caught: run it with max_workers=1 to see it happen")
+    else:
+        what = f"failed with {failure.error.rstrip('.')}"
+        fix = ("Fix the factory or drop that setting (or pass on_error='record' to keep "
+               "going); run with max_workers=1 to debug it in this process")
     return SweepRunError(
-        f"{owner}: the run with setting {setting_label(task.setting)} (setting index "
-        f"{task.setting_index}) and seed {task.seed} failed with {type(exc).__name__}: "
-        f"{str(exc).rstrip('.')}. "
-        "Fix the factory or drop that setting; run with max_workers=1 to debug it in this "
-        "process.",
-        dict(task.setting), task.setting_index, task.seed,
+        f"{owner}: the run with setting {setting_label(setting)} (setting index {index}) and "
+        f"seed {seed}: {what}. {fix}; {done}.",
+        dict(setting), index, seed, partial,
     )
-
-
-def _call(owner: str, fn: Callable[..., Any], make_agent: Any, make_env: Any, task: _Task,
-          options: tuple, bar: Any) -> Any:
-    try:
-        output = fn(make_agent, make_env, task, options)
-    except Exception as exc:
-        raise _failure(owner, task, exc) from exc
-    if bar is not None:
-        bar.update(1)
-    return output
-
-
-def _collect(owner: str, executor: Any, make_agent: Any, make_env: Any, tasks: list[_Task],
-             options: tuple, bar: Any) -> list[Any]:
-    futures = [executor.submit(_run_task, make_agent, make_env, task, options) for task in tasks]
-    outputs = []
-    try:
-        for task, future in zip(tasks, futures, strict=True):
-            try:
-                outputs.append(future.result())
-            except Exception as exc:
-                raise _failure(owner, task, exc) from exc
-            if bar is not None:
-                bar.update(1)
-    finally:
-        for future in futures:
-            future.cancel()
-    return outputs
-
-
-def _progress_bar(total: int, enabled: bool) -> Any:
-    if not enabled:
-        return None
-    try:
-        from tqdm.auto import tqdm
-    except ImportError as exc:  # pragma: no cover - depends on the environment
-        raise ImportError("run_sweep(progress=True) needs tqdm: pip install 'tdkit[progress]'"
-                          ) from exc
-    return tqdm(total=total, unit="run")

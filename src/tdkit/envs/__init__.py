@@ -10,3 +10,8 @@ from .finite import FiniteMDP
 from .model_env import FiniteMDPEnv
 
 __all__ += ["FiniteMDP", "FiniteMDPEnv", "problems"]
+
+# Continuing tasks (issue 12).
+from . import access_control  # noqa: E402
+
+__all__ += ["access_control"]

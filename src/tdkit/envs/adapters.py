@@ -91,6 +91,8 @@ import gymnasium
 import numpy as np
 
 from .._errors import EnvironmentProtocolError, InvalidParameterError
+from .._text import describe as _describe
+from .._text import short as _short
 
 __all__ = ["EnvAdapter", "adapt"]
 
@@ -100,7 +102,6 @@ _GYMNASIUM_STEP = "a 5-tuple (obs, reward, terminated, truncated, info) (gymnasi
 _LEGACY_STEP = "a 4-tuple (obs, reward, done, info) (legacy gym API)"
 _DM_STEP = "a dm_env-style time step with attributes step_type, reward, discount and observation"
 _ANY_STEP = f"{_GYMNASIUM_STEP}, {_LEGACY_STEP} or {_DM_STEP}"
-_REPR_LIMIT = 200
 
 
 def adapt(env_or_id: Any, *, api: str = "auto", **make_kwargs: Any) -> gymnasium.Env:
@@ -204,8 +205,9 @@ class EnvAdapter(gymnasium.Env):
 
     Notes
     -----
-    ``step`` is chosen once, when the flavour is known, and then only checks
-    types with identity tests on its fast path. It returns the wrapped
+    The step function of the flavour (``_step``) is chosen once, when the
+    flavour is known, and then only checks types with identity tests on its
+    fast path. It returns the wrapped
     env's own tuple when that is already well-formed (a gymnasium-flavour
     object returning ``float``/``bool``/``dict``).
     """
@@ -229,6 +231,7 @@ class EnvAdapter(gymnasium.Env):
         # ("gymnasium", "legacy", "dm_env", "dm_env_methods"); None until detected.
         self._reset_kind: str | None = None
         self._step_kind: str | None = None
+        self._step: Callable[[Any], tuple] = self._detect_and_step
         if api == "gymnasium":
             self._reset_kind = "pair"
             self._install_step("gymnasium")
@@ -280,9 +283,12 @@ class EnvAdapter(gymnasium.Env):
     def step(self, action: Any) -> tuple:
         """Advance one step; return ``(obs, reward, terminated, truncated, info)``.
 
-        This method runs once: it detects the flavour from the first result and
-        installs the matching step function on the instance.
+        The first call detects the flavour from the result; every call then goes
+        through the step function of that flavour (``_step``).
         """
+        return self._step(action)
+
+    def _detect_and_step(self, action: Any) -> tuple:
         result = self.env.step(action)
         kind = self._step_kind_of(result, action)
         self._install_step(kind)
@@ -315,11 +321,12 @@ class EnvAdapter(gymnasium.Env):
     # method, so it is rebuilt rather than copied.
     def __getstate__(self) -> dict:
         state = self.__dict__.copy()
-        state.pop("step", None)
+        state.pop("_step", None)  # a closure over the wrapped env's bound step
         return state
 
     def __setstate__(self, state: dict) -> None:
         self.__dict__.update(state)
+        self._step = self._detect_and_step
         if self._step_kind is not None:
             self._install_step(self._step_kind)
 
@@ -398,7 +405,7 @@ class EnvAdapter(gymnasium.Env):
 
     def _install_step(self, kind: str) -> None:
         self._step_kind = kind
-        self.step = _STEP_FACTORIES[kind](self.env.step, self._name())
+        self._step = _STEP_FACTORIES[kind](self.env.step, self._name())
 
 
 # -- step functions, one per flavour ----------------------------------------------------------
@@ -662,15 +669,3 @@ def _detect_reset_kind(result: Any) -> str:
     if type(result) is tuple and len(result) == 2 and isinstance(result[1], dict):
         return "pair"
     return "bare"
-
-
-def _short(x: Any) -> str:
-    try:
-        text = repr(x)
-    except Exception:  # a broken __repr__ must not hide the real error
-        text = f"<{type(x).__name__} object>"
-    return text if len(text) <= _REPR_LIMIT else text[: _REPR_LIMIT - 3] + "..."
-
-
-def _describe(x: Any) -> str:
-    return f"{type(x).__name__} {_short(x)}"

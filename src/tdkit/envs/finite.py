@@ -20,11 +20,12 @@ hold for them are replaced by a self-loop with reward 0, so their value is 0.
 from __future__ import annotations
 
 import numbers
+import warnings
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from .._errors import InvalidParameterError
+from .._errors import EnvironmentProtocolError, InvalidParameterError
 from .._validation import check_in_range
 
 if TYPE_CHECKING:
@@ -35,8 +36,38 @@ __all__ = ["FiniteMDP"]
 _PROB_ATOL = 1e-8
 """Allowed deviation of a probability row's sum from 1 (then renormalised)."""
 
+_REMOVAL = "0.3.0"
+"""Version that removes the deprecated keyword spellings."""
+
 _DENSE_LIMIT = 2**26
 """Largest number of entries (S * A * S) a sparse model expands to as dense ``P``."""
+
+
+_UNSET: Any = object()
+"""Marks a deprecated keyword that was not passed."""
+
+
+def _read_action_masks(env: Any, shape: tuple[int, int]) -> np.ndarray | None:
+    """Call ``env.unwrapped.action_mask(s)`` for every env state, if the env has it.
+
+    Rows beyond the env's states (the sink state ``from_gymnasium`` may add)
+    allow every action. Returns None when the env has no such method.
+    """
+    base = getattr(env, "unwrapped", env)
+    method = getattr(base, "action_mask", None)
+    if not callable(method):
+        return None
+    n_env_states = int(base.observation_space.n)
+    masks = np.ones(shape, dtype=bool)
+    for s in range(n_env_states):
+        row = np.asarray(method(s))
+        if row.shape != (shape[1],):
+            raise EnvironmentProtocolError(
+                f"FiniteMDP.from_gymnasium: env.unwrapped.action_mask({s}) must return "
+                f"{shape[1]} entries (one per action); got shape {row.shape}."
+            )
+        masks[s] = row.astype(bool)
+    return masks
 
 
 def _readonly(array: np.ndarray) -> np.ndarray:
@@ -116,6 +147,35 @@ def _terminal_mask(owner: str, terminal: Any, n_states: int) -> np.ndarray:
     return mask.copy()
 
 
+def _action_masks(
+    owner: str, masks: Any, shape: tuple[int, int], terminal: np.ndarray
+) -> np.ndarray | None:
+    """Validate an ``(S, A)`` action mask; rows of terminal states become all True."""
+    if masks is None:
+        return None
+    array = np.asarray(masks)
+    if array.shape != shape:
+        raise InvalidParameterError(
+            f"{owner}: masks must be a boolean array of shape (S, A) = {shape}; got shape "
+            f"{array.shape}. Pass masks=None if every action is allowed everywhere."
+        )
+    if array.dtype != bool:
+        if array.dtype.kind not in "biu" or not np.isin(array, (0, 1)).all():
+            raise InvalidParameterError(
+                f"{owner}: masks must hold booleans (or 0/1 integers); got {masks!r:.80}."
+            )
+    array = array.astype(bool)  # a copy: the caller's array is never kept
+    array[terminal] = True
+    empty = ~array.any(axis=1)
+    if empty.any():
+        s = int(np.argmax(empty))
+        raise InvalidParameterError(
+            f"{owner}: masks[{s}, :] allows no action in non-terminal state {s}; every "
+            "non-terminal state needs at least one allowed action (or mark it terminal)."
+        )
+    return array
+
+
 def _initial_distribution(
     owner: str, initial: Any, terminal: np.ndarray
 ) -> np.ndarray:
@@ -176,6 +236,15 @@ class FiniteMDP:
     initial : array_like, shape (S,), optional
         Start distribution used by :meth:`to_env`. Default: uniform over the
         non-terminal states. It may not put mass on terminal states.
+    masks : array_like of bool, shape (S, A), optional
+        Allowed actions: ``masks[s, a]`` is False when action ``a`` may not be
+        taken in state ``s`` (as gymnasium's Taxi reports in
+        ``info["action_mask"]``). Every non-terminal state needs at least one
+        allowed action; rows of terminal states are set to all True. The
+        solvers of :mod:`tdkit.dp` never let a masked action enter a maximum
+        or an expectation and report its action value as ``-inf``;
+        :meth:`to_env` reports the row of the current state as
+        ``info["action_mask"]``. Default: every action allowed.
 
     Attributes
     ----------
@@ -185,6 +254,8 @@ class FiniteMDP:
     initial : ndarray, shape (S,)
     R : ndarray, shape (S, A)
         Expected one-step rewards (zero on terminal rows).
+    masks : ndarray of bool, shape (S, A), or None
+        Allowed actions, or None when every action is allowed.
     is_sparse : bool
         Whether the model is held in the sparse successor form.
 
@@ -241,6 +312,7 @@ class FiniteMDP:
         gamma: float,
         terminal: Any = None,
         initial: Any = None,
+        masks: Any = None,
     ) -> None:
         owner = "FiniteMDP"
         probs = _as_float_array(owner, "P", P)
@@ -270,6 +342,7 @@ class FiniteMDP:
                 f"(S, A, S) = {(n_states, n_actions, n_states)}; got shape {rewards.shape}."
             )
         start = _initial_distribution(owner, initial, term)
+        allowed = _action_masks(owner, masks, (n_states, n_actions), term)
         if term.any():
             idx = np.flatnonzero(term)
             probs[idx] = 0.0
@@ -278,16 +351,22 @@ class FiniteMDP:
             expected[idx] = 0.0
             if outcome_rewards is not None:
                 outcome_rewards[idx] = 0.0
-        self._set_common(gamma, term, start, expected)
+        self._set_common(gamma, term, start, expected, allowed)
         self._P = _readonly(probs)
         self._P_flat = probs.reshape(n_states * n_actions, n_states)
         self._next = self._probs = None
         self._outcome_rewards = None if outcome_rewards is None else _readonly(outcome_rewards)
 
     def _set_common(
-        self, gamma: float, terminal: np.ndarray, initial: np.ndarray, rewards: np.ndarray
+        self,
+        gamma: float,
+        terminal: np.ndarray,
+        initial: np.ndarray,
+        rewards: np.ndarray,
+        masks: np.ndarray | None = None,
     ) -> None:
         self._gamma = float(gamma)
+        self._masks = None if masks is None else _readonly(masks)
         self._terminal = _readonly(terminal)
         self._initial = _readonly(initial)
         self._R = _readonly(np.ascontiguousarray(rewards, dtype=np.float64))
@@ -306,6 +385,7 @@ class FiniteMDP:
         gamma: float,
         terminal: Any = None,
         initial: Any = None,
+        masks: Any = None,
     ) -> FiniteMDP:
         """Build a model in the sparse successor form.
 
@@ -319,7 +399,7 @@ class FiniteMDP:
             Probability of each successor slot; rows sum to 1.
         rewards : array_like, shape (S, A) or (S, A, K)
             Expected reward of ``(s, a)``, or the reward of each successor slot.
-        gamma, terminal, initial
+        gamma, terminal, initial, masks
             As for :class:`FiniteMDP`.
 
         Returns
@@ -384,6 +464,7 @@ class FiniteMDP:
                 f"(S, A, K) = {nxt.shape}; got shape {r.shape}."
             )
         start = _initial_distribution(owner, initial, term)
+        allowed = _action_masks(owner, masks, (n_states, n_actions), term)
         nxt = np.array(nxt, dtype=np.intp)
         if term.any():
             idx = np.flatnonzero(term)
@@ -394,7 +475,7 @@ class FiniteMDP:
             expected[idx] = 0.0
             if outcome_rewards is not None:
                 outcome_rewards[idx] = 0.0
-        return cls._build_sparse(gamma, term, start, expected, nxt, p, outcome_rewards)
+        return cls._build_sparse(gamma, term, start, expected, nxt, p, outcome_rewards, allowed)
 
     @classmethod
     def _build_sparse(
@@ -406,10 +487,11 @@ class FiniteMDP:
         next_states: np.ndarray,
         probs: np.ndarray,
         outcome_rewards: np.ndarray | None,
+        masks: np.ndarray | None = None,
     ) -> FiniteMDP:
         """Assemble a sparse model from arrays that are already validated."""
         mdp = cls.__new__(cls)
-        mdp._set_common(gamma, terminal, initial, rewards)
+        mdp._set_common(gamma, terminal, initial, rewards, masks)
         mdp._P = mdp._P_flat = None
         mdp._next = _readonly(np.ascontiguousarray(next_states, dtype=np.intp))
         mdp._probs = _readonly(np.ascontiguousarray(probs, dtype=np.float64))
@@ -447,6 +529,14 @@ class FiniteMDP:
         distribution is ``env.unwrapped.initial_state_distrib`` when present,
         else uniform over non-terminal states.
 
+        Action masks: when the env has a method ``action_mask(state)`` (Taxi:
+        gymnasium computes it from the taxi's position, walls and the
+        passenger's place, the same array it returns as
+        ``info["action_mask"]``), it is called for every state and the model
+        carries the result as :attr:`masks` (the added sink allows every
+        action). Solvers then respect it, :meth:`to_env` reports it, and
+        :func:`tdkit.agent_policy` passes it to the agent.
+
         Parameters
         ----------
         env : gymnasium.Env
@@ -466,8 +556,11 @@ class FiniteMDP:
         """
         from ._gym_tables import read_transition_table
 
+        owner = "FiniteMDP.from_gymnasium"
         table = read_transition_table(env)
-        gamma = check_in_range("FiniteMDP.from_gymnasium", "gamma", gamma, 0.0, 1.0)
+        gamma = check_in_range(owner, "gamma", gamma, 0.0, 1.0)
+        shape = table.probs.shape[:2]
+        masks = _action_masks(owner, _read_action_masks(env, shape), shape, table.terminal)
         return cls._build_sparse(
             gamma,
             table.terminal,
@@ -476,6 +569,7 @@ class FiniteMDP:
             table.next_states,
             table.probs,
             table.rewards,
+            masks,
         )
 
     # ------------------------------------------------------------------ accessors
@@ -508,6 +602,11 @@ class FiniteMDP:
     def R(self) -> np.ndarray:
         """Read-only expected rewards ``(S, A)``; rows of terminal states are 0."""
         return self._R
+
+    @property
+    def masks(self) -> np.ndarray | None:
+        """Read-only allowed actions ``(S, A)`` (all True on terminal rows), or None."""
+        return self._masks
 
     @property
     def is_sparse(self) -> bool:
@@ -570,6 +669,17 @@ class FiniteMDP:
             )
         return self._successor_cache
 
+    def _successor_arrays(self) -> tuple[np.ndarray, np.ndarray]:
+        """``(next_states, probs)`` of :attr:`successors` without building the rewards.
+
+        For a sparse model these are the stored arrays (no copy), so solvers
+        of 10^6-state models do not materialise an (S, A, K) reward array.
+        """
+        if self._next is not None and self._probs is not None:
+            return self._next, self._probs
+        next_states, probs, _ = self.successors
+        return next_states, probs
+
     # ------------------------------------------------------------------ algebra
     def expected_next(self, v: np.ndarray) -> np.ndarray:
         r"""Return :math:`\sum_{s'} P(s' \mid s, a)\, v(s')` for every pair, shape ``(S, A)``.
@@ -617,7 +727,12 @@ class FiniteMDP:
                 weighted, dense_p, out=np.zeros_like(weighted), where=dense_p > 0
             ).reshape(n, m, n)
         return FiniteMDP(
-            self.P, rewards, gamma=self._gamma, terminal=self._terminal, initial=self._initial
+            self.P,
+            rewards,
+            gamma=self._gamma,
+            terminal=self._terminal,
+            initial=self._initial,
+            masks=self._masks,
         )
 
     def to_sparse(self) -> FiniteMDP:
@@ -627,7 +742,7 @@ class FiniteMDP:
         nxt, probs, rewards = self.successors
         outcome = None if self._outcome_rewards is None else rewards
         return FiniteMDP._build_sparse(
-            self._gamma, self._terminal, self._initial, self._R, nxt, probs, outcome
+            self._gamma, self._terminal, self._initial, self._R, nxt, probs, outcome, self._masks
         )
 
     def with_gamma(self, gamma: float) -> FiniteMDP:
@@ -638,13 +753,18 @@ class FiniteMDP:
         clone._gamma = gamma
         return clone
 
-    def to_env(self, max_steps: int | None = None) -> FiniteMDPEnv:
+    def to_env(
+        self, max_episode_steps: int | None = None, *, max_steps: Any = _UNSET
+    ) -> FiniteMDPEnv:
         """Return a :class:`gymnasium.Env` that samples this model.
 
         Parameters
         ----------
-        max_steps : int, optional
+        max_episode_steps : int, optional
             Episodes are truncated (``truncated=True``) after this many steps.
+        max_steps : int, optional
+            Deprecated spelling of ``max_episode_steps`` (a ``FutureWarning``;
+            removed in tdkit 0.3.0).
 
         Returns
         -------
@@ -653,7 +773,8 @@ class FiniteMDP:
             samples with its own ``np_random`` (seeded by ``reset(seed=...)``),
             starts from :attr:`initial`, reports ``terminated=True`` on entering
             a terminal state; ``env.unwrapped.gamma`` and ``env.unwrapped.mdp``
-            give the model.
+            give the model. When the model has :attr:`masks`, ``info`` holds
+            ``"action_mask"``, the boolean row of the current state.
 
         Examples
         --------
@@ -667,20 +788,37 @@ class FiniteMDP:
         """
         from .model_env import FiniteMDPEnv
 
-        if max_steps is not None and not (
-            isinstance(max_steps, numbers.Integral)
-            and not isinstance(max_steps, bool)
-            and max_steps >= 1
+        owner = "FiniteMDP.to_env"
+        if max_steps is not _UNSET:
+            if max_episode_steps is not None:
+                raise InvalidParameterError(
+                    f"{owner}: got both max_episode_steps={max_episode_steps!r} and the "
+                    f"deprecated max_steps={max_steps!r}; pass max_episode_steps only."
+                )
+            warnings.warn(
+                f"{owner}: max_steps= is deprecated and will be removed in tdkit {_REMOVAL}; "
+                "use max_episode_steps= (the name train() uses).",
+                FutureWarning,
+                stacklevel=2,
+            )
+            max_episode_steps = max_steps
+        if max_episode_steps is not None and not (
+            isinstance(max_episode_steps, numbers.Integral)
+            and not isinstance(max_episode_steps, bool)
+            and max_episode_steps >= 1
         ):
             raise InvalidParameterError(
-                f"FiniteMDP.to_env: max_steps must be a positive integer or None; "
-                f"got {max_steps!r}."
+                f"{owner}: max_episode_steps must be a positive integer or None; "
+                f"got {max_episode_steps!r}."
             )
-        return FiniteMDPEnv(self, max_steps=None if max_steps is None else int(max_steps))
+        limit = None if max_episode_steps is None else int(max_episode_steps)
+        return FiniteMDPEnv(self, max_episode_steps=limit)
 
     def __repr__(self) -> str:
         return (
             f"FiniteMDP(n_states={self._n_states}, n_actions={self._n_actions}, "
             f"gamma={self._gamma!r}, form={'sparse' if self.is_sparse else 'dense'!r}, "
-            f"n_terminal={int(self._terminal.sum())})"
+            f"n_terminal={int(self._terminal.sum())}"
+            + ("" if self._masks is None else ", masked=True")
+            + ")"
         )

@@ -28,9 +28,13 @@ class FiniteMDPEnv(gymnasium.Env):
       one uniform number from ``np_random``; the reward is the per-transition
       reward when the model has one, else the expected reward ``R[s, a]``.
       ``terminated`` is true on entering a terminal state. ``truncated`` is
-      true when ``max_steps`` steps have been taken and the episode did not
-      terminate on that step.
+      true when ``max_episode_steps`` steps have been taken and the episode
+      did not terminate on that step.
     * Stepping a terminal state keeps it there with reward 0.
+    * When the model has action masks, ``info["action_mask"]`` (from
+      ``reset`` and ``step``) is the read-only boolean row of the current
+      state. A masked action is still carried out as the model's row says
+      (as gymnasium's Taxi does); learners are expected not to choose it.
 
     Attributes
     ----------
@@ -38,17 +42,18 @@ class FiniteMDPEnv(gymnasium.Env):
         The sampled model.
     gamma : float
         Its discount (``env.unwrapped.gamma``).
-    max_steps : int or None
+    max_episode_steps : int or None
         Truncation horizon.
     """
 
     metadata: dict[str, Any] = {"render_modes": []}  # noqa: RUF012 (gymnasium's convention)
 
-    def __init__(self, mdp: FiniteMDP, *, max_steps: int | None = None) -> None:
+    def __init__(self, mdp: FiniteMDP, *, max_episode_steps: int | None = None) -> None:
         super().__init__()
         self.mdp = mdp
         self.gamma = mdp.gamma
-        self.max_steps = max_steps
+        self.max_episode_steps = max_episode_steps
+        self._masks = mdp.masks
         self.observation_space = gymnasium.spaces.Discrete(mdp.n_states)
         self.action_space = gymnasium.spaces.Discrete(mdp.n_actions)
         next_states, probs, rewards = mdp.successors
@@ -74,7 +79,12 @@ class FiniteMDPEnv(gymnasium.Env):
         u = self.np_random.random()
         self._state = int(np.searchsorted(self._initial_cumulative, u, side="right"))
         self._steps = 0
-        return self._state, {}
+        return self._state, self._info(self._state)
+
+    def _info(self, state: int) -> dict[str, Any]:
+        if self._masks is None:
+            return {}
+        return {"action_mask": self._masks[state]}
 
     def step(self, action: Any) -> tuple[int, float, bool, bool, dict[str, Any]]:
         """Take ``action``; return ``(state, reward, terminated, truncated, info)``."""
@@ -93,7 +103,7 @@ class FiniteMDPEnv(gymnasium.Env):
                 f"got {action!r}."
             )
         if self._terminal[s]:
-            return s, 0.0, True, False, {}
+            return s, 0.0, True, False, self._info(s)
         row = self._cumulative[s, action]
         k = int(np.searchsorted(row, self.np_random.random(), side="right"))
         if k >= row.shape[0]:  # pragma: no cover - only if rounding pushes u past 1
@@ -103,7 +113,6 @@ class FiniteMDPEnv(gymnasium.Env):
         self._state = nxt
         self._steps += 1
         terminated = bool(self._terminal[nxt])
-        truncated = (
-            not terminated and self.max_steps is not None and self._steps >= self.max_steps
-        )
-        return nxt, reward, terminated, truncated, {}
+        limit = self.max_episode_steps
+        truncated = not terminated and limit is not None and self._steps >= limit
+        return nxt, reward, terminated, truncated, self._info(nxt)

@@ -24,12 +24,14 @@ import numpy as np
 from .._errors import InvalidParameterError
 from .._seeding import SeedLike, as_generator
 from .._validation import check_in_range, check_positive_int, check_real
+from .access_control import access_control
 from .finite import FiniteMDP
 
 __all__ = [
     "GRID_ACTIONS",
     "KING_ACTIONS",
     "ChangingMaze",
+    "access_control",
     "blocking_maze",
     "cliff_walking",
     "dyna_maze",
@@ -52,8 +54,12 @@ KING_ACTIONS = (*GRID_ACTIONS, "up-right", "down-right", "down-left", "up-left",
 
 _MOVES = ((-1, 0), (0, 1), (1, 0), (0, -1), (-1, 1), (1, 1), (1, -1), (-1, -1), (0, 0))
 
-Outcome = tuple[float, int, float]
-"""(probability, next state, reward) of one successor slot."""
+class Successor(NamedTuple):
+    """One successor slot of a state-action pair, as the problems below list them."""
+
+    probability: float
+    next_state: int
+    reward: float
 
 
 class ChangingMaze(NamedTuple):
@@ -68,7 +74,7 @@ class ChangingMaze(NamedTuple):
 def _from_outcomes(
     n_states: int,
     n_actions: int,
-    outcomes: Callable[[int, int], Iterable[Outcome]],
+    outcomes: Callable[[int, int], Iterable[Successor]],
     *,
     gamma: float,
     terminal: np.ndarray,
@@ -85,10 +91,10 @@ def _from_outcomes(
     rewards = np.zeros((n_states, n_actions, width))
     for s, per_state in enumerate(table):
         for a, row in enumerate(per_state):
-            for k, (p, nxt, r) in enumerate(row):
-                next_states[s, a, k] = nxt
-                probs[s, a, k] = p
-                rewards[s, a, k] = r
+            for k, slot in enumerate(row):
+                next_states[s, a, k] = slot.next_state
+                probs[s, a, k] = slot.probability
+                rewards[s, a, k] = slot.reward
     return FiniteMDP.from_successors(
         next_states, probs, rewards, gamma=gamma, terminal=terminal, initial=initial
     )
@@ -152,10 +158,10 @@ def random_walk(
     terminal = np.zeros(size, dtype=bool)
     terminal[[0, size - 1]] = True
 
-    def outcomes(s: int, _a: int) -> list[Outcome]:
+    def outcomes(s: int, _a: int) -> list[Successor]:
         return [
-            (0.5, s - 1, left if s - 1 == 0 else 0.0),
-            (0.5, s + 1, right if s + 1 == size - 1 else 0.0),
+            Successor(0.5, s - 1, left if s - 1 == 0 else 0.0),
+            Successor(0.5, s + 1, right if s + 1 == size - 1 else 0.0),
         ]
 
     return _from_outcomes(
@@ -179,9 +185,9 @@ def gridworld_4x4(*, gamma: float = 1.0) -> FiniteMDP:
     terminal = np.zeros(16, dtype=bool)
     terminal[[0, 15]] = True
 
-    def outcomes(s: int, a: int) -> list[Outcome]:
+    def outcomes(s: int, a: int) -> list[Successor]:
         row, col = _clip_move(*divmod(s, 4), a, shape)
-        return [(1.0, row * 4 + col, -1.0)]
+        return [Successor(1.0, row * 4 + col, -1.0)]
 
     return _from_outcomes(
         16, 4, outcomes, gamma=_gamma("gridworld_4x4", gamma), terminal=terminal, initial=None
@@ -205,15 +211,15 @@ def gridworld_5x5(*, gamma: float = 0.9) -> FiniteMDP:
     shape = (5, 5)
     a_cell, a_prime, b_cell, b_prime = 1, 21, 3, 13
 
-    def outcomes(s: int, a: int) -> list[Outcome]:
+    def outcomes(s: int, a: int) -> list[Successor]:
         if s == a_cell:
-            return [(1.0, a_prime, 10.0)]
+            return [Successor(1.0, a_prime, 10.0)]
         if s == b_cell:
-            return [(1.0, b_prime, 5.0)]
+            return [Successor(1.0, b_prime, 5.0)]
         row, col = divmod(s, 5)
         new_row, new_col = _clip_move(row, col, a, shape)
         off_grid = (new_row, new_col) == (row, col)
-        return [(1.0, new_row * 5 + new_col, -1.0 if off_grid else 0.0)]
+        return [Successor(1.0, new_row * 5 + new_col, -1.0 if off_grid else 0.0)]
 
     return _from_outcomes(
         25, 4, outcomes, gamma=_gamma("gridworld_5x5", gamma),
@@ -266,7 +272,7 @@ def windy_gridworld(
     start, goal = 3 * n_cols, 3 * n_cols + 7
     terminal = _one_hot(n_rows * n_cols, goal).astype(bool)
 
-    def outcomes(s: int, a: int) -> list[Outcome]:
+    def outcomes(s: int, a: int) -> list[Successor]:
         row, col = divmod(s, n_cols)
         d_row, d_col = _MOVES[a]
         wind = _WIND[col]
@@ -277,7 +283,7 @@ def windy_gridworld(
         for p, w in winds:
             new_row = min(max(row + d_row - w, 0), n_rows - 1)
             new_col = min(max(col + d_col, 0), n_cols - 1)
-            result.append((p, new_row * n_cols + new_col, -1.0))
+            result.append(Successor(p, new_row * n_cols + new_col, -1.0))
         return result
 
     return _from_outcomes(
@@ -306,12 +312,12 @@ def cliff_walking(*, gamma: float = 1.0) -> FiniteMDP:
     start, goal = 36, 47
     cliff = set(range(37, 47))
 
-    def outcomes(s: int, a: int) -> list[Outcome]:
+    def outcomes(s: int, a: int) -> list[Successor]:
         row, col = _clip_move(*divmod(s, 12), a, shape)
         nxt = row * 12 + col
         if nxt in cliff:
-            return [(1.0, start, -100.0)]
-        return [(1.0, nxt, -1.0)]
+            return [Successor(1.0, start, -100.0)]
+        return [Successor(1.0, nxt, -1.0)]
 
     return _from_outcomes(
         48, 4, outcomes, gamma=_gamma("cliff_walking", gamma),
@@ -355,10 +361,10 @@ def maximization_bias(
     std = check_in_range(owner, "std", std, 0.0, math.inf)
     n_actions = max(2, n_b)
 
-    def outcomes(s: int, a: int) -> list[Outcome]:
+    def outcomes(s: int, a: int) -> list[Successor]:
         if s == 0:
-            return [(1.0, 1, 0.0)] if a == 0 else [(1.0, 2, 0.0)]
-        return [(0.5, 2, mean + std), (0.5, 2, mean - std)]
+            return [Successor(1.0, 1, 0.0)] if a == 0 else [Successor(1.0, 2, 0.0)]
+        return [Successor(0.5, 2, mean + std), Successor(0.5, 2, mean - std)]
 
     return _from_outcomes(
         3, n_actions, outcomes, gamma=_gamma(owner, gamma),
@@ -406,12 +412,12 @@ def gamblers_problem(
     terminal = np.zeros(size, dtype=bool)
     terminal[[0, goal]] = True
 
-    def outcomes(s: int, a: int) -> list[Outcome]:
+    def outcomes(s: int, a: int) -> list[Successor]:
         stake = min(a, s, goal - s)
         if stake == 0:
-            return [(1.0, s, 0.0)]
+            return [Successor(1.0, s, 0.0)]
         win = s + stake
-        return [(p, win, 1.0 if win == goal else 0.0), (1.0 - p, s - stake, 0.0)]
+        return [Successor(p, win, 1.0 if win == goal else 0.0), Successor(1.0 - p, s - stake, 0.0)]
 
     return _from_outcomes(
         size, goal // 2 + 1, outcomes, gamma=_gamma(owner, gamma), terminal=terminal,
@@ -437,12 +443,12 @@ def _maze(
     blocked = {r * n_cols + c for r, c in walls}
     goal_index = goal[0] * n_cols + goal[1]
 
-    def outcomes(s: int, a: int) -> list[Outcome]:
+    def outcomes(s: int, a: int) -> list[Successor]:
         row, col = _clip_move(*divmod(s, n_cols), a, shape)
         nxt = row * n_cols + col
         if nxt in blocked:
             nxt = s
-        return [(1.0, nxt, 1.0 if nxt == goal_index else 0.0)]
+        return [Successor(1.0, nxt, 1.0 if nxt == goal_index else 0.0)]
 
     size = n_rows * n_cols
     return _from_outcomes(

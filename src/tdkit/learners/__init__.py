@@ -5,10 +5,12 @@
 * :mod:`~tdkit.learners.traces`: Sarsa(λ) and Watkins's Q(λ).
 * :mod:`~tdkit.learners.planning`: Dyna-Q, Dyna-Q+ and prioritized sweeping.
 * :mod:`~tdkit.learners.prediction`: TD(0) and TD(λ) state-value prediction.
+* :mod:`~tdkit.learners.differential`: average-reward learners for continuing tasks.
 """
 
 from __future__ import annotations
 
+from .differential import DifferentialQLearning, DifferentialSarsa, DifferentialTD
 from .n_step import NStepSarsa, TreeBackup
 from .one_step import DoubleQLearning, ExpectedSarsa, QLearning, Sarsa
 from .planning import DynaQ, DynaQPlus, PrioritizedSweeping
@@ -34,4 +36,6 @@ __all__ = [
     # prediction
     "TD0",
     "TDLambda",
+    # average reward (continuing tasks)
+    "DifferentialQLearning", "DifferentialSarsa", "DifferentialTD",
 ]

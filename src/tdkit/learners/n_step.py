@@ -97,6 +97,12 @@ class _NStepLearner(TabularAgent):
                 buffer.popleft()
         return tuple(errors)
 
+    def _settle_cut(self) -> tuple[float, ...]:
+        tail = self._tail
+        if tail is None or not self._buffer:
+            return ()
+        return tuple(self._update_front(len(self._buffer), tail, False))
+
     def _end_episode(self) -> None:
         self._buffer.clear()
         self._tail = None

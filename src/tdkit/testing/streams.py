@@ -56,8 +56,9 @@ def _streams(
         action = draw(st.sampled_from(allowed))
         next_obs = draw(st.integers(0, n_states - 1))
         ends = draw(st.floats(0.0, 1.0)) < end_probability
-        terminated = ends and draw(st.booleans())
-        truncated = ends and not terminated
+        how = draw(st.sampled_from(_ENDINGS)) if ends else ""
+        terminated = how in ("terminated", "both")
+        truncated = how in ("truncated", "both")
         next_mask = np.array(draw(mask_rows)) if masks else None
         record = (obs, action, draw(rewards), next_obs, terminated, truncated)
         stream.append((*record, next_mask) if masks else record)
@@ -67,6 +68,12 @@ def _streams(
         else:
             obs, mask = next_obs, next_mask
     return stream
+
+
+#: How a drawn episode ends: a terminal state, a time limit, or both at once (an
+#: episode that terminates exactly at its time limit, which ``train`` hands over
+#: with both flags set and in which ``terminated`` wins).
+_ENDINGS = ("terminated", "truncated", "both")
 
 
 def transition_streams(
@@ -82,11 +89,11 @@ def transition_streams(
     """Lists of transitions ``(obs, action, reward, next_obs, terminated, truncated)``.
 
     Consecutive transitions form episodes: each starts where the previous one
-    ended unless that one terminated or was truncated (each with probability
-    ``end_probability / 2``), in which case a new episode starts in a random
-    state. With ``masks=True`` every transition carries a ``next_mask``
-    (at least one allowed action) as a 7th entry, and the next action
-    respects it.
+    ended unless that one ended the episode (probability ``end_probability``:
+    terminated, truncated, or both flags at once, each a third of the time), in
+    which case a new episode starts in a random state. With ``masks=True``
+    every transition carries a ``next_mask`` (at least one allowed action) as
+    a 7th entry, and the next action respects it.
 
     Parameters
     ----------
@@ -129,8 +136,10 @@ def random_transitions(
 
     Each tuple is in ``observe``'s argument order plus the next mask:
     ``(obs, action, reward, next_obs, terminated, truncated, next_mask)``.
-    About 10% of steps terminate and 5% are cut by a time limit; the next
-    episode starts in a random state. With ``masks=True`` every next state
+    About 10% of steps terminate and 5% are cut by a time limit; a third of
+    the terminating steps also carry ``truncated=True`` (an episode that ends
+    exactly at its time limit: ``terminated`` wins). The next episode starts
+    in a random state. With ``masks=True`` every next state
     gets a random mask allowing at least one action.
 
     Examples
@@ -146,7 +155,7 @@ def random_transitions(
         a = int(rng.integers(n_actions))
         s2 = int(rng.integers(n_states))
         terminated = bool(rng.random() < 0.1)
-        truncated = not terminated and bool(rng.random() < 0.05)
+        truncated = bool(rng.random() < (1 / 3 if terminated else 0.05))
         mask = None
         if masks:
             mask = rng.random(n_actions) < 0.6

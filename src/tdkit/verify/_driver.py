@@ -10,15 +10,20 @@ not return floats) becomes an :class:`AgentFault` naming the episode and step.
 from __future__ import annotations
 
 import math
-import numbers
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
-import gymnasium
 import numpy as np
 
-from ..loop import episode_seed
+from ..runs import (
+    AgentFault,
+    EpisodeHooks,
+    check_update_result,
+    describe_exception,
+    episode_seed,
+    run_episode,
+)
 
 __all__ = [
     "AgentFault",
@@ -32,20 +37,6 @@ __all__ = [
     "read_v",
     "run_episodes",
 ]
-
-
-class AgentFault(Exception):
-    """The agent broke the protocol; ``where`` says when (episode, step)."""
-
-    def __init__(self, message: str, where: str | None = None) -> None:
-        super().__init__(message)
-        self.message = message
-        self.where = where
-
-
-def _describe_exc(exc: BaseException) -> str:
-    text = str(exc).splitlines()[0] if str(exc) else ""
-    return f"{type(exc).__name__}: {text}" if text else type(exc).__name__
 
 
 @dataclass(frozen=True)
@@ -99,7 +90,7 @@ def build_agent(make_agent: Callable[[Any, int], Any], env: Any, seed: int) -> A
     try:
         agent = make_agent(env, seed)
     except Exception as exc:
-        raise AgentFault(f"make_agent(env, {seed}) raised {_describe_exc(exc)}") from exc
+        raise AgentFault(f"make_agent(env, {seed}) raised {describe_exception(exc)}") from exc
     if agent is None:
         raise AgentFault(f"make_agent(env, {seed}) returned None instead of an agent")
     return agent
@@ -107,30 +98,7 @@ def build_agent(make_agent: Callable[[Any, int], Any], env: Any, seed: int) -> A
 
 def check_errors(errors: Any, where: str) -> tuple[float, ...]:
     """Return ``update()``'s result as a tuple of floats, or raise an AgentFault."""
-    if type(errors) is tuple and all(type(e) is float for e in errors):
-        return errors  # the common case, checked cheaply
-    if isinstance(errors, np.ndarray):
-        if errors.ndim != 1:
-            raise AgentFault(
-                f"update() returned an array of shape {errors.shape}; it must return a "
-                "sequence of TD errors (a tuple of floats, () when nothing was applied)",
-                where,
-            )
-        errors = errors.tolist()
-    if not isinstance(errors, Sequence) or isinstance(errors, (str, bytes)):
-        raise AgentFault(
-            f"update() returned {errors!r:.60}; it must return a sequence of TD errors "
-            "(a tuple of floats, () when nothing was applied)",
-            where,
-        )
-    out = []
-    for e in errors:
-        if isinstance(e, bool) or not isinstance(e, numbers.Real):
-            raise AgentFault(
-                f"update() returned {errors!r:.60}, which holds the non-float {e!r:.30}", where
-            )
-        out.append(float(e))
-    return tuple(out)
+    return check_update_result(errors, where)
 
 
 def read_q(agent: Any, states: Sequence[int], where: str | None = None) -> np.ndarray:
@@ -140,7 +108,7 @@ def read_q(agent: Any, states: Sequence[int], where: str | None = None) -> np.nd
         try:
             rows.append(np.asarray(agent.q_values(s), dtype=np.float64).reshape(-1))
         except Exception as exc:
-            raise AgentFault(f"q_values({s!r}) raised {_describe_exc(exc)}", where) from exc
+            raise AgentFault(f"q_values({s!r}) raised {describe_exception(exc)}", where) from exc
     if len({r.shape for r in rows}) > 1:
         raise AgentFault(f"q_values returned rows of different lengths for states {states}", where)
     return np.array(rows)
@@ -153,7 +121,7 @@ def read_v(agent: Any, states: Sequence[int], where: str | None = None) -> np.nd
         try:
             out.append(float(np.asarray(agent.values(s), dtype=np.float64).reshape(())))
         except Exception as exc:
-            raise AgentFault(f"values({s!r}) raised {_describe_exc(exc)}", where) from exc
+            raise AgentFault(f"values({s!r}) raised {describe_exception(exc)}", where) from exc
     return np.array(out)
 
 
@@ -175,19 +143,6 @@ class Watcher:
         """Called when an episode ended."""
 
 
-def _action_check(space: Any) -> Callable[[Any], bool]:
-    """A fast membership test for ``Discrete`` spaces, ``space.contains`` otherwise."""
-    if isinstance(space, gymnasium.spaces.Discrete):
-        low, high = int(space.start), int(space.start + space.n)
-
-        def valid(action: Any) -> bool:
-            return (isinstance(action, (int, np.integer)) and not isinstance(action, bool)
-                    and low <= action < high)
-
-        return valid
-    return space.contains
-
-
 @dataclass
 class RunTrace:
     """What happened in :func:`run_episodes`."""
@@ -202,6 +157,24 @@ def where(episode: int, step: int) -> str:
     return f"episode {episode}, step {step}"
 
 
+class _Tap(EpisodeHooks):
+    """Feeds one episode's steps to a :class:`Watcher` and into a :class:`RunTrace`."""
+
+    def __init__(self, watcher: Watcher, trace: RunTrace, episode: int) -> None:
+        self.watcher, self.trace, self.episode = watcher, trace, episode
+
+    def after_act(self, step: int, obs: Any, action: Any) -> None:
+        self.trace.actions.append(int(action))
+        self.watcher.after_act(self.episode, step, obs, action)
+
+    def before_observe(self, step: int, transition: tuple) -> None:
+        self.watcher.before_observe(self.episode, step, transition)
+
+    def after_update(self, step: int, transition: tuple, errors: tuple[float, ...]) -> None:
+        self.trace.errors.append(errors)
+        self.watcher.after_update(self.episode, step, transition, errors)
+
+
 def run_episodes(
     agent: Any,
     env: Any,
@@ -210,71 +183,37 @@ def run_episodes(
     seed: int,
     watcher: Watcher | None = None,
     max_steps: int = 10_000,
+    max_episode_steps: int | None = None,
 ) -> RunTrace:
-    """Train ``agent`` for ``episodes`` episodes the way :func:`tdkit.train` does.
+    """Train ``agent`` for ``episodes`` episodes through tdkit's one episode driver.
 
-    Environment seeds are :func:`tdkit.loop.episode_seed` of ``seed``, so a run
-    is reproduced by ``tdkit.train(make_agent(env, seed), env, episodes=...,
-    seed=seed)``. Masks travel in ``info["action_mask"]``. An episode longer
-    than ``max_steps`` is an :class:`AgentFault` (the probe environments end
-    every episode well before).
+    Each episode is :func:`tdkit.runs.run_episode` in checked mode, exactly
+    as :func:`tdkit.train` runs it (environment seeds are
+    :func:`tdkit.runs.episode_seed` of ``seed``, masks from
+    ``info["action_mask"]``, both flags at a time limit), so a finding is
+    reproduced by ``tdkit.train(make_agent(env, seed), env, episodes=...,
+    seed=seed, max_episode_steps=...)``. An episode longer than ``max_steps``
+    is an :class:`AgentFault` (the probe environments end every episode well
+    before).
     """
     watch = watcher or Watcher()
     root = np.random.SeedSequence(seed)
-    space = env.action_space
-    valid = _action_check(space)
     trace = RunTrace()
     for episode in range(episodes):
-        obs, info = env.reset(seed=episode_seed(root, episode))
-        mask = info.get("action_mask") if info else None
-        ret = 0.0
-        for step in range(max_steps):
-            here = where(episode, step)
-            try:
-                action = agent.act(obs, mask=mask)
-            except Exception as exc:
-                raise AgentFault(f"act({obs!r}) raised {_describe_exc(exc)}", here) from exc
-            if not valid(action):
-                raise AgentFault(
-                    f"act({obs!r}) returned {action!r}, which is not in the action space {space}",
-                    here,
-                )
-            trace.actions.append(int(action))
-            watch.after_act(episode, step, obs, action)
-            next_obs, reward, terminated, truncated, info = env.step(action)
-            next_mask = info.get("action_mask") if info else None
-            transition = (obs, action, reward, next_obs, terminated, truncated, next_mask)
-            watch.before_observe(episode, step, transition)
-            try:
-                agent.observe(
-                    obs, action, reward, next_obs, terminated, truncated, next_mask=next_mask
-                )
-            except Exception as exc:
-                raise AgentFault(
-                    f"observe({obs!r}, {action!r}, {reward!r}, {next_obs!r}, {terminated}, "
-                    f"{truncated}) raised {_describe_exc(exc)}",
-                    here,
-                ) from exc
-            try:
-                result = agent.update()
-            except Exception as exc:
-                raise AgentFault(f"update() raised {_describe_exc(exc)}", here) from exc
-            errors = check_errors(result, here)
-            trace.errors.append(errors)
-            watch.after_update(episode, step, transition, errors)
-            ret += reward
-            trace.steps += 1
-            if terminated or truncated:
-                break
-            obs, mask = next_obs, next_mask
-        else:
+        result = run_episode(
+            agent, env, env_seed=episode_seed(root, episode), checked=True,
+            hooks=_Tap(watch, trace, episode), max_episode_steps=max_episode_steps,
+            step_budget=max_steps, episode_index=episode,
+        )
+        if result.end == "unfinished":
             raise AgentFault(
                 f"episode did not end within {max_steps} steps of a probe environment that ends "
                 "every episode sooner",
                 where(episode, max_steps),
             )
-        trace.returns.append(ret)
-        watch.after_episode(episode, step + 1)
+        trace.steps += result.length
+        trace.returns.append(result.total_reward)
+        watch.after_episode(episode, result.length)
     return trace
 
 

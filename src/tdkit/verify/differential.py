@@ -36,6 +36,7 @@ from typing import Any, NamedTuple
 import numpy as np
 
 from .._errors import InvalidParameterError
+from .._text import describe_exception as _describe
 from ._driver import AgentFault, Watcher, run_episodes
 
 __all__ = ["Divergence", "RecordedTransition", "compare_updates", "record_transitions"]
@@ -292,10 +293,6 @@ def compare_updates(
             return Divergence(i, "value", state, action, expected, value)
         previous = t
     return None
-
-
-def _describe(exc: BaseException) -> str:
-    return f"{type(exc).__name__}: {exc}"
 
 
 def _first_difference(

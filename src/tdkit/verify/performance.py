@@ -13,7 +13,12 @@ training, and compares the two samples of run scores:
 
 Runs are independent, so they can run in parallel on any
 :class:`concurrent.futures.Executor` (factories must then pickle: use
-module-level functions or :func:`tdkit.verify.agent_factory`).
+module-level functions or :func:`tdkit.verify.agent_factory`). They take the
+one seed path of tdkit's runs (:func:`tdkit.sweep.derive_seeds`): A's run for
+seed ``s`` is stream 0 of ``s`` and B's is stream 1, so A's runs are exactly
+those of ``run_sweep(make_a, make_env, seeds=...)`` with the same budget, and
+the two samples are independent (Welch's test assumes it). Both samples are
+summarised by :func:`tdkit.stats.summarize_scores`, the summary of sweeps.
 
 References
 ----------
@@ -32,27 +37,16 @@ from typing import Any
 
 import numpy as np
 
-from .._runs import check_callable, check_executor, check_seeds, train_run
+from .._dispatch import dispatch
+from .._results import SweepRunError
+from .._runs import check_callable, check_executor, check_seeds, seeded_run
 from .._validation import check_in_range, check_positive_int
-from ..stats import ConfidenceInterval, WelchResult, bootstrap_ci, welch_test
+from ..stats import ScoreSummary, WelchResult, summarize_scores, welch_test
 
 __all__ = ["AgentScores", "PerformanceComparison", "compare_performance", "run_score"]
 
-VERDICTS = ("better", "no different", "worse")
-
-B_SEED_OFFSET = 1_000_003
-"""B's runs use ``seed + B_SEED_OFFSET``, so the two samples are independent (Welch's test
-assumes it) and two copies of one factory do not trivially give identical scores."""
-
-
-@dataclass(frozen=True)
-class AgentScores:
-    """Run scores of one agent and their summaries."""
-
-    label: str
-    scores: tuple[float, ...]
-    mean: ConfidenceInterval
-    iqm: ConfidenceInterval
+AgentScores = ScoreSummary
+"""The run scores of one agent: :class:`tdkit.stats.ScoreSummary` (former name)."""
 
 
 @dataclass(frozen=True)
@@ -87,28 +81,17 @@ def run_score(
     episodes: int,
     eval_episodes: int,
     max_episode_steps: int | None,
+    stream: int = 0,
 ) -> float:
     """Score of one run: train a fresh agent, return its mean greedy return.
 
-    The agent is ``make_agent(env, seed)``; training and evaluation use the
-    environment seeds of two children of ``SeedSequence(seed)``. Module
+    The run is the one of :func:`tdkit.sweep.derive_seeds` ``(seed, stream)``:
+    the same as the run of a sweep's setting ``stream`` with that seed. Module
     level, so executors can pickle it.
     """
-    train_root, eval_root = np.random.SeedSequence(seed).spawn(2)
-    _, returns = train_run(make_agent, make_env, seed, train_root, eval_root, episodes, None,
-                           max_episode_steps, eval_episodes)
+    _, _, returns = seeded_run(make_agent, make_env, seed, stream, episodes, None,
+                               max_episode_steps, eval_episodes)
     return float(np.mean(returns))
-
-
-def _scores(
-    make: Callable, make_env: Callable, seeds: tuple[int, ...], settings: tuple,
-    executor: Executor | None,
-) -> list[float]:
-    n = len(seeds)
-    columns = ([make] * n, [make_env] * n, list(seeds), *([value] * n for value in settings))
-    if executor is None:
-        return [run_score(*args) for args in zip(*columns, strict=True)]
-    return list(executor.map(run_score, *columns))
 
 
 def compare_performance(
@@ -130,7 +113,9 @@ def compare_performance(
     For every seed, each factory builds an agent on a fresh ``make_env()``,
     which is trained for ``episodes`` episodes and scored by the mean return
     of ``eval_episodes`` greedy episodes (:func:`tdkit.evaluate`). A's run
-    uses ``seed``, B's ``seed + B_SEED_OFFSET`` (independent samples).
+    for a seed is stream 0 of the seed and B's stream 1
+    (:func:`tdkit.sweep.derive_seeds`): independent samples, and A's runs
+    are the runs a sweep of ``make_a`` gives for the same seeds.
 
     Parameters
     ----------
@@ -147,7 +132,7 @@ def compare_performance(
     max_episode_steps : int or None, default 1000
         Time limit for training (truncation) and evaluation episodes.
     executor : concurrent.futures.Executor, optional
-        Runs the seeds in parallel (``executor.map``); the factories must
+        Runs the seeds in parallel (``executor.submit``); the factories must
         pickle for process pools. Results do not depend on the executor.
     confidence : float, default 0.95
         Confidence of the intervals and of the verdict.
@@ -168,6 +153,9 @@ def compare_performance(
     ------
     InvalidParameterError
         On a non-callable factory, fewer than 2 seeds, or settings out of range.
+    tdkit.sweep.SweepRunError
+        When a run fails, naming the agent's label and the seed (the run's
+        own exception is chained).
     """
     owner = "compare_performance"
     for name, value in (("make_a", make_a), ("make_b", make_b), ("make_env", make_env)):
@@ -181,18 +169,27 @@ def compare_performance(
                                 low_open=True, high_open=True)
     n_resamples = check_positive_int(owner, "n_resamples", n_resamples)
     if executor is not None:
-        check_executor(owner, executor)
-    settings = (episodes, eval_episodes, max_episode_steps)
-    summaries = []
-    for label, make, offset in zip(labels, (make_a, make_b), (0, B_SEED_OFFSET), strict=True):
-        run_seeds = tuple(s + offset for s in seed_list)
-        scores = _scores(make, make_env, run_seeds, settings, executor)
-        summaries.append(AgentScores(
-            label,
-            tuple(scores),
-            bootstrap_ci(scores, "mean", confidence=confidence, n_resamples=n_resamples, seed=0),
-            bootstrap_ci(scores, "iqm", confidence=confidence, n_resamples=n_resamples, seed=0),
-        ))
+        check_executor(owner, executor, "submit")
+    calls = [
+        (make, make_env, seed, episodes, eval_episodes, max_episode_steps, stream)
+        for stream, make in enumerate((make_a, make_b))
+        for seed in seed_list
+    ]
+    outcomes = dispatch(run_score, calls, executor=executor, workers=1, stop_on_failure=True)
+    for (_, _, seed, *_, stream), outcome in zip(calls, outcomes, strict=True):
+        if outcome is not None and outcome.failure is not None:
+            failure = outcome.failure
+            raise SweepRunError(
+                f"{owner}: the run of {labels[stream]} with seed {seed} failed: "
+                f"{failure.error}. Run the factory on its own to debug it.",
+                {"agent": labels[stream]}, stream, seed,
+            ) from failure.exception()
+    n = len(seed_list)
+    summaries = [
+        summarize_scores([outcome.value for outcome in outcomes[k * n:(k + 1) * n]],
+                         label=label, confidence=confidence, n_resamples=n_resamples, seed=0)
+        for k, label in enumerate(labels)
+    ]
     a, b = summaries
     test = welch_test(a.scores, b.scores)
     if test.p_value < 1.0 - confidence:

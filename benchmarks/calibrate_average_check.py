@@ -1,0 +1,102 @@
+"""Calibrate the verifier's average-reward check: false alarms on correct learners, power on bugs.
+
+Runs ``tdkit.verify._average_checks.check_average_reward`` for tdkit's three
+average-reward learners (with the factories a team would use, as in
+tests/test_differential.py) over many seeds and counts failures, which are
+false alarms: the check's margin is derived for a rate of 1/1000. With zero
+failures in n seeds the one-sided 95% upper bound on the rate is
+1 - 0.05**(1/n) (about 3/n). It then runs three deliberately broken learners
+and counts how often the check catches them (its power).
+
+    python benchmarks/calibrate_average_check.py            # 300 seeds
+    python benchmarks/calibrate_average_check.py --seeds 1000
+    python benchmarks/calibrate_average_check.py --smoke    # 3 seeds, a quick look
+"""
+
+from __future__ import annotations
+
+import argparse
+import time
+
+import numpy as np
+
+import tdkit
+from tdkit.schedules import Exponential
+from tdkit.verify._average_checks import check_average_reward
+
+
+def _factory(cls):
+    def make(env, seed):
+        if cls is tdkit.DifferentialTD:
+            n, m = env.observation_space.n, env.action_space.n
+            return cls.for_env(env, policy=np.full((n, m), 1.0 / m), seed=seed)
+        if cls is tdkit.DifferentialSarsa:  # on-policy: exploration decays (GLIE)
+            return cls.for_env(env, exploration=Exponential(0.2, 0.999, 0.01), seed=seed)
+        return cls.for_env(env, seed=seed)
+
+    return make
+
+
+class TimeLimitIsTerminal(tdkit.DifferentialQLearning):
+    """Bug: the time limit is read as the end of the task."""
+
+    def observe(self, obs, action, reward, next_obs, terminated, truncated, *, next_mask=None):
+        super().observe(obs, action, reward, next_obs, terminated or truncated, False,
+                        next_mask=next_mask)
+
+
+class AverageOfRewards(tdkit.DifferentialQLearning):
+    """Bug: the average follows the rewards seen (the behaviour's gain), not the TD error."""
+
+    def _differential_step(self, s, a, target):
+        return self._td_step(self._q, self._visits, s, a, target)
+
+    def observe(self, obs, action, reward, *args, **kwargs):
+        super().observe(obs, action, reward, *args, **kwargs)
+        self.average_reward += 0.01 * (reward - self.average_reward)
+
+
+class NoAverage(tdkit.DifferentialQLearning):
+    """Bug: the average is never learned."""
+
+    def _differential_step(self, s, a, target):
+        return self._td_step(self._q, self._visits, s, a, target)
+
+
+def _bug(cls):
+    return lambda env, seed: cls.for_env(env, exploration=0.3, seed=seed)
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--seeds", type=int, default=300)
+    parser.add_argument("--bug-seeds", type=int, default=30)
+    parser.add_argument("--smoke", action="store_true", help="3 seeds each")
+    args = parser.parse_args()
+    seeds = 3 if args.smoke else args.seeds
+    bug_seeds = 3 if args.smoke else args.bug_seeds
+    print(f"false alarms of check_average_reward over {seeds} seeds (derived for 1/1000):")
+    for cls in (tdkit.DifferentialQLearning, tdkit.DifferentialSarsa, tdkit.DifferentialTD):
+        if not seeds:
+            break
+        start = time.perf_counter()
+        failures, errors = [], []
+        for seed in range(seeds):
+            passed, message = check_average_reward(_factory(cls), seed)
+            errors.append(float(message.split("error ")[1].split(",")[0]))
+            if not passed:
+                failures.append(seed)
+        bound = 1.0 - 0.05 ** (1.0 / max(seeds, 1)) if not failures else float("nan")
+        print(
+            f"  {cls.__name__:<22} {len(failures)}/{seeds} failed {failures[:10]}; "
+            f"error mean {np.mean(errors):+.4f} sd {np.std(errors):.4f}; "
+            f"95% upper bound on the rate {bound:.4f}; {time.perf_counter() - start:.0f} s"
+        )
+    print(f"power against bugs over {bug_seeds} seeds (fraction caught):")
+    for cls in (TimeLimitIsTerminal, AverageOfRewards, NoAverage):
+        caught = sum(not check_average_reward(_bug(cls), seed)[0] for seed in range(bug_seeds))
+        print(f"  {cls.__name__:<22} {caught}/{bug_seeds}")
+
+
+if __name__ == "__main__":
+    main()

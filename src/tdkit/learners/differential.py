@@ -1,0 +1,443 @@
+r"""Average-reward TD learners for continuing tasks: differential Q-learning, SARSA and TD.
+
+A continuing task never ends, and these learners optimise (or estimate) its
+long-run average reward :math:`\rho` instead of a discounted return. Each
+keeps an estimate :math:`\bar R` (attribute ``average_reward``) and learns
+*differential* values with the TD error
+
+.. math:: \delta_t = R_{t+1} - \bar R_t + \hat v(S_{t+1}) - \hat q(S_t, A_t),
+
+where :math:`\hat v(S_{t+1})` is :math:`\max_a Q(S_{t+1}, a)` (differential
+Q-learning), :math:`Q(S_{t+1}, A_{t+1})` (differential SARSA) or
+:math:`V(S_{t+1})` (differential TD). Both estimates move with it
+(Wan, Naik & Sutton 2021):
+
+.. math:: Q(S_t, A_t) \leftarrow Q(S_t, A_t) + \alpha\,\delta_t, \qquad
+          \bar R \leftarrow \bar R + \eta\,\alpha\,\delta_t,
+
+``step_size`` being :math:`\alpha` and ``reward_step_size`` the ratio
+:math:`\eta`. The table update is the shared TD step of
+:class:`~tdkit.agent.TabularAgent` with target :math:`R_{t+1} - \bar R +
+\hat v(S_{t+1})`; the average moves by :math:`\eta` times the change that step
+made, so the rule is written once. There is no discount: the learners take no
+``gamma`` (:meth:`for_env` does not read the env's) and their values are
+defined up to one additive constant.
+
+``terminated`` and ``truncated`` in a continuing task
+-----------------------------------------------------
+* ``truncated`` (a time limit: the task goes on, the simulation was cut):
+  the target bootstraps from ``next_obs`` as usual; the next episode is a new
+  piece of experience, not linked to this one.
+* ``terminated``: the task *restarts*. A terminal state takes no time step;
+  the next state is the start state of the next episode. So the update of a
+  terminating transition waits for the first transition of the next episode
+  and then bootstraps from its start state :math:`S_0` (``max_a Q(S_0, a)``
+  over the actions ``act`` was allowed there, ``Q(S_0, A_0)`` with the action
+  really taken, or ``V(S_0)``). It is applied when that first transition is
+  learned, just before that transition's own update, and its TD error comes
+  first in the tuple :meth:`update` returns. Until then it is held in the
+  learner (and saved with it): this is the one thing that crosses from one
+  episode to the next, because in a continuing task the restart is part of
+  the dynamics. This is the reading
+  :func:`tdkit.dp_average.relative_value_iteration` uses for terminal states,
+  so learned and exact gains agree.
+* :meth:`end_episode` (an episode cut without flags) is settled as a time
+  limit, which for these one-step learners means nothing is left to do.
+
+References
+----------
+Wan, Y., Naik, A. & Sutton, R. S. (2021). Learning and planning in
+average-reward Markov decision processes. Proceedings of the 38th
+International Conference on Machine Learning (ICML), PMLR 139.
+Sutton, R. S. & Barto, A. G. (2018). Reinforcement Learning: An Introduction,
+2nd ed., MIT Press. Section 10.3.
+"""
+
+from __future__ import annotations
+
+from typing import Any, ClassVar
+
+import numpy as np
+
+from .._errors import InvalidParameterError
+from .._greedy import check_mask, masked_max
+from .._seeding import SeedLike
+from .._validation import check_real
+from ..agent import TabularAgent, Transition
+from ..exploration import Exploration
+from ..schedules import Schedule
+from ..tables import InitialValue
+from ._commit import CommitsNextAction
+from .prediction import _POLICY_DOC, _PolicyLearner
+
+__all__ = ["DifferentialQLearning", "DifferentialSarsa", "DifferentialTD"]
+
+_DEFAULT_ETA = 0.1
+r"""Default :math:`\eta` (``reward_step_size``)."""
+
+
+class _AverageReward:
+    """What the three differential learners share: the average, the restart, no discount.
+
+    Put it first in the bases. Subclasses call :meth:`_init_average` after the
+    base constructor and implement :meth:`_restart_value`.
+    """
+
+    _extra_params: ClassVar[tuple[str, ...]] = ("reward_step_size", "initial_average_reward")
+
+    #: (state, action, reward) of a terminating transition whose bootstrap waits for the
+    #: next episode's start state, or None.
+    _restart: tuple[int, int, float] | None = None
+
+    def _init_average(self, reward_step_size: float, initial_average_reward: float) -> None:
+        name = type(self).__name__
+        eta = check_real(name, "reward_step_size", reward_step_size)
+        if eta <= 0.0:
+            raise InvalidParameterError(
+                f"{name}: reward_step_size must be > 0 (it is eta, the average reward's step "
+                f"as a multiple of step_size); got {reward_step_size!r}. Values in (0, 1] are "
+                "usual."
+            )
+        self.reward_step_size = reward_step_size
+        self.initial_average_reward = initial_average_reward
+        self._eta = eta
+        self.average_reward = check_real(name, "initial_average_reward", initial_average_reward)
+        self._restart = None
+
+    @classmethod
+    def for_env(cls, env: Any, **kwargs: Any) -> Any:
+        """Build a learner whose encoders match ``env``'s spaces.
+
+        As :meth:`tdkit.TabularAgent.for_env`, except that no discount is
+        read from ``env.unwrapped.gamma``: average reward does not discount.
+        """
+        from ..encoders import action_encoder_for_space, for_space
+        from ..envs import adapt
+
+        if "gamma" in kwargs:
+            raise InvalidParameterError(
+                f"{cls.__name__}.for_env: average-reward learners take no gamma; got "
+                f"gamma={kwargs['gamma']!r}. Drop it, or use a discounted learner."
+            )
+        env = adapt(env)
+        for key, space_name, make in (
+            ("state_encoder", "observation_space", for_space),
+            ("action_encoder", "action_space", action_encoder_for_space),
+        ):
+            if key not in kwargs:
+                space = getattr(env, space_name, None)
+                if space is None:
+                    raise InvalidParameterError(
+                        f"{cls.__name__}.for_env: the environment has no {space_name}; pass "
+                        "n_states, n_actions and encoders to the constructor instead."
+                    )
+                kwargs[key] = make(space)
+        return cls(kwargs["state_encoder"].n_states, kwargs["action_encoder"].n_actions, **kwargs)
+
+    def get_params(self) -> dict[str, Any]:
+        """Constructor arguments, as given (no ``gamma``: there is no discount)."""
+        params = super().get_params()  # type: ignore[misc]
+        del params["gamma"]
+        return params
+
+    def __repr__(self) -> str:
+        params = self.get_params()
+        order = ("n_states", "n_actions", "step_size", "exploration", *self._extra_params)
+        shown = [k for k in dict.fromkeys(order) if k in params]
+        return f"{type(self).__name__}({', '.join(f'{k}={params[k]!r}' for k in shown)})"
+
+    # ------------------------------------------------------------ the rule
+    def _differential_step(self, s: int, a: int, target: float) -> float:
+        r"""The shared TD step to ``target``, then :math:`\bar R \mathrel{+}= \eta\alpha\delta`.
+
+        :math:`\alpha\delta` is exactly the change the TD step made to the entry.
+        """
+        values = self._q  # type: ignore[attr-defined]
+        before = values[s, a]
+        delta = self._td_step(values, self._visits, s, a, target)  # type: ignore[attr-defined]
+        self.average_reward += self._eta * float(values[s, a] - before)
+        return delta
+
+    # ------------------------------------------------------------ restarts
+    def _close_restart(self, s0: int, a0: int) -> tuple[float, ...]:
+        """Apply the held terminating transition now that the start state ``s0`` is known."""
+        s, a, r = self._restart  # type: ignore[misc]
+        self._restart = None
+        target = r - self.average_reward + self._restart_value(s0, a0)
+        return (self._differential_step(s, a, target),)
+
+    def _hold_restart(self, s: int, a: int, r: float) -> tuple[float, ...]:
+        """Keep a terminating transition until the next episode's start state is seen."""
+        self._restart = (s, a, r)
+        return ()
+
+    def _restart_value(self, s0: int, a0: int) -> float:
+        raise NotImplementedError
+
+
+class DifferentialQLearning(_AverageReward, TabularAgent):
+    r"""Differential Q-learning: off-policy average-reward control.
+
+    .. math::
+        \delta_t = R_{t+1} - \bar R_t + \max_{a \in \mathcal A(S_{t+1})} Q(S_{t+1}, a)
+        - Q(S_t, A_t), \quad
+        Q(S_t, A_t) \mathrel{+}= \alpha\,\delta_t, \quad
+        \bar R \mathrel{+}= \eta\,\alpha\,\delta_t
+
+    In a communicating MDP, with suitably decreasing step sizes and every
+    pair visited infinitely often, :math:`\bar R` converges to the optimal
+    gain :math:`\rho^*` and :math:`Q` to :math:`q^* + c` for a constant
+    :math:`c` (Wan, Naik & Sutton 2021, Theorem 1), whatever the behaviour
+    policy. The max runs over the actions ``next_mask`` allows; greedy ties
+    are broken uniformly at random. ``truncated`` bootstraps; ``terminated``
+    restarts the task (see :mod:`tdkit.learners.differential`).
+
+    Parameters
+    ----------
+    n_states, n_actions : int
+        Table shape.
+    step_size : float or Schedule, default 0.1
+        :math:`\alpha \in (0, 1]` or a schedule.
+    reward_step_size : float, default 0.1
+        :math:`\eta > 0`: the average reward moves by :math:`\eta\alpha\delta`.
+    exploration : float, Schedule or Exploration, default 0.1
+        ε of ε-greedy, or an exploration object.
+    initial_value : float or (float, float), default 0.0
+    initial_average_reward : float, default 0.0
+        Starting :math:`\bar R`.
+    seed : int, Generator or None
+    state_encoder, action_encoder : optional
+        See :mod:`tdkit.encoders`; :meth:`for_env` picks them from an env.
+
+    Attributes
+    ----------
+    average_reward : float
+        :math:`\bar R`, the learned estimate of the gain.
+
+    Raises
+    ------
+    ValueError
+        If a hyper-parameter is outside its range (the message names it).
+
+    References
+    ----------
+    .. [1] Wan, Y., Naik, A. & Sutton, R. S. (2021). Learning and planning in
+       average-reward Markov decision processes. ICML, PMLR 139. Algorithm
+       "Differential Q-learning".
+
+    Examples
+    --------
+    >>> agent = DifferentialQLearning(2, 2, step_size=0.5, reward_step_size=1.0, seed=0)
+    >>> agent.observe(0, 1, 2.0, 1, False, False)
+    >>> agent.update()          # delta = 2 - 0 + max Q(1, .) - Q(0, 1) = 2
+    (2.0,)
+    >>> float(agent.table[0, 1]), agent.average_reward   # both moved by alpha * delta
+    (1.0, 1.0)
+    """
+
+    _reset_state: int = -1
+
+    def __init__(
+        self,
+        n_states: int,
+        n_actions: int,
+        *,
+        step_size: float | Schedule = 0.1,
+        reward_step_size: float = _DEFAULT_ETA,
+        exploration: float | Schedule | Exploration = 0.1,
+        initial_value: InitialValue = 0.0,
+        initial_average_reward: float = 0.0,
+        seed: SeedLike = None,
+        state_encoder: Any = None,
+        action_encoder: Any = None,
+    ) -> None:
+        super().__init__(
+            n_states, n_actions, gamma=1.0, step_size=step_size, exploration=exploration,
+            initial_value=initial_value, seed=seed, state_encoder=state_encoder,
+            action_encoder=action_encoder,
+        )
+        self._init_average(reward_step_size, initial_average_reward)
+        # The mask act saw in the first state after a restart (for that state's max).
+        self._reset_mask = np.ones(self.n_actions, dtype=bool)
+        self._reset_state = -1
+
+    def act(self, obs: Any, *, mask: Any = None, explore: bool = True) -> Any:
+        """Choose an action; after a terminal state, remember the start state's mask."""
+        if self._restart is not None or (self._pending and self._pending[-1][4]):
+            if mask is None:
+                self._reset_state = -1
+            else:
+                self._reset_mask[:] = check_mask(mask, self.n_actions)
+                self._reset_state = self._encode(obs)
+        return super().act(obs, mask=mask, explore=explore)
+
+    def _learn(self, transition: Transition) -> tuple[float, ...]:
+        s, a, r, s2, terminated, _truncated, next_mask = transition
+        head = () if self._restart is None else self._close_restart(s, a)
+        if terminated:
+            return head + self._hold_restart(s, a, r)
+        return (*head, self._differential_step(
+            s, a, r - self.average_reward + masked_max(self._q[s2], next_mask)
+        ))
+
+    def _restart_value(self, s0: int, a0: int) -> float:
+        mask = self._reset_mask if self._reset_state == s0 else None
+        self._reset_state = -1
+        return masked_max(self._q[s0], mask)
+
+
+class DifferentialSarsa(_AverageReward, CommitsNextAction, TabularAgent):
+    r"""Differential SARSA: on-policy average-reward control.
+
+    .. math::
+        \delta_t = R_{t+1} - \bar R_t + Q(S_{t+1}, A_{t+1}) - Q(S_t, A_t), \quad
+        Q(S_t, A_t) \mathrel{+}= \alpha\,\delta_t, \quad
+        \bar R \mathrel{+}= \eta\,\alpha\,\delta_t
+
+    :math:`A_{t+1}` is committed exactly as for :class:`tdkit.Sarsa` (the
+    next ``act(next_obs)`` returns the action the update used). With a fixed
+    behaviour policy :math:`\bar R` estimates that policy's gain; with
+    exploration decaying to greedy it approaches :math:`\rho^*`. The
+    tabular case of the differential semi-gradient SARSA of Sutton & Barto
+    (2018, Section 10.3) with :math:`\beta = \eta\alpha` and the TD error
+    (rather than :math:`R - \bar R`) driving the average, as in Wan, Naik &
+    Sutton (2021). ``truncated`` bootstraps with an uncommitted
+    :math:`A_{t+1}`; ``terminated`` restarts the task and bootstraps from
+    :math:`Q(S_0, A_0)` of the next episode's first transition.
+
+    Parameters
+    ----------
+    n_states, n_actions, step_size, reward_step_size, exploration, initial_value
+        As for :class:`DifferentialQLearning`; so are
+        ``initial_average_reward``, ``seed``, ``state_encoder`` and
+        ``action_encoder``.
+
+    References
+    ----------
+    .. [1] Sutton, R. S. & Barto, A. G. (2018). Reinforcement Learning: An
+       Introduction, 2nd ed., Section 10.3 (differential semi-gradient Sarsa).
+    .. [2] Wan, Y., Naik, A. & Sutton, R. S. (2021). Learning and planning in
+       average-reward Markov decision processes. ICML, PMLR 139.
+
+    Examples
+    --------
+    >>> agent = DifferentialSarsa(2, 2, step_size=0.5, reward_step_size=0.5, seed=0)
+    >>> agent.observe(0, 1, 4.0, 1, False, False)
+    >>> agent.update()
+    (4.0,)
+    >>> agent.average_reward     # 0.5 * 0.5 * 4
+    1.0
+    """
+
+    def __init__(
+        self,
+        n_states: int,
+        n_actions: int,
+        *,
+        step_size: float | Schedule = 0.1,
+        reward_step_size: float = _DEFAULT_ETA,
+        exploration: float | Schedule | Exploration = 0.1,
+        initial_value: InitialValue = 0.0,
+        initial_average_reward: float = 0.0,
+        seed: SeedLike = None,
+        state_encoder: Any = None,
+        action_encoder: Any = None,
+    ) -> None:
+        super().__init__(
+            n_states, n_actions, gamma=1.0, step_size=step_size, exploration=exploration,
+            initial_value=initial_value, seed=seed, state_encoder=state_encoder,
+            action_encoder=action_encoder,
+        )
+        self._init_average(reward_step_size, initial_average_reward)
+
+    def _learn(self, transition: Transition) -> tuple[float, ...]:
+        s, a, r, s2, terminated, truncated, next_mask = transition
+        head = () if self._restart is None else self._close_restart(s, a)
+        if terminated:
+            self._drop_next_action()
+            return head + self._hold_restart(s, a, r)
+        a2 = self._next_action(s2, next_mask, truncated)
+        return (*head, self._differential_step(s, a, r - self.average_reward + self._q[s2, a2]))
+
+    def _restart_value(self, s0: int, a0: int) -> float:
+        return float(self._q[s0, a0])
+
+
+class DifferentialTD(_AverageReward, _PolicyLearner):
+    __doc__ = r"""Differential TD(0): the differential values and the gain of a given policy.
+
+    .. math::
+        \delta_t = R_{t+1} - \bar R_t + V(S_{t+1}) - V(S_t), \quad
+        V(S_t) \mathrel{+}= \alpha\,\delta_t, \quad
+        \bar R \mathrel{+}= \eta\,\alpha\,\delta_t
+
+    For a unichain policy :math:`\bar R` converges to the policy's gain
+    (:func:`tdkit.policy_gain`) and :math:`V` to its bias plus a constant
+    (Wan, Naik & Sutton 2021, "Differential TD-learning"). Acting samples the
+    given policy, as :class:`tdkit.TD0` does. ``truncated`` bootstraps;
+    ``terminated`` restarts the task and bootstraps from :math:`V(S_0)` of the
+    next episode's start state.
+    """ + _POLICY_DOC.replace(
+        """    gamma : float, default 0.99
+        Discount factor in [0, 1].
+""", ""
+    ) + r"""
+    reward_step_size : float, default 0.1
+        :math:`\eta > 0`: the average reward moves by :math:`\eta\alpha\delta`.
+    initial_average_reward : float, default 0.0
+
+    Attributes
+    ----------
+    average_reward : float
+        :math:`\bar R`, the estimate of the policy's gain.
+
+    References
+    ----------
+    .. [1] Wan, Y., Naik, A. & Sutton, R. S. (2021). Learning and planning in
+       average-reward Markov decision processes. ICML, PMLR 139.
+    .. [2] Tsitsiklis, J. N. & Van Roy, B. (1999). Average cost temporal-
+       difference learning. Automatica 35(11), 1799-1808.
+
+    Examples
+    --------
+    >>> agent = DifferentialTD(2, 1, policy=[[1.0], [1.0]], step_size=0.5, reward_step_size=1.0)
+    >>> agent.observe(0, 0, 1.0, 1, False, False); agent.update()
+    (1.0,)
+    >>> agent.values(0), agent.average_reward
+    (0.5, 0.5)
+    """
+
+    _extra_params: ClassVar[tuple[str, ...]] = (
+        "policy", "reward_step_size", "initial_average_reward",
+    )
+
+    def __init__(
+        self,
+        n_states: int,
+        n_actions: int,
+        *,
+        policy: Any,
+        step_size: float | Schedule = 0.1,
+        reward_step_size: float = _DEFAULT_ETA,
+        initial_value: InitialValue = 0.0,
+        initial_average_reward: float = 0.0,
+        seed: SeedLike = None,
+        state_encoder: Any = None,
+        action_encoder: Any = None,
+    ) -> None:
+        super().__init__(
+            n_states, n_actions, policy=policy, gamma=1.0, step_size=step_size,
+            initial_value=initial_value, seed=seed, state_encoder=state_encoder,
+            action_encoder=action_encoder,
+        )
+        self._init_average(reward_step_size, initial_average_reward)
+
+    def _learn(self, transition: Transition) -> tuple[float, ...]:
+        s, _a, r, s2, terminated, _truncated, _next_mask = transition
+        head = () if self._restart is None else self._close_restart(s, 0)
+        if terminated:
+            return head + self._hold_restart(s, 0, r)
+        return (*head, self._differential_step(s, 0, r - self.average_reward + self._q[s2, 0]))
+
+    def _restart_value(self, s0: int, a0: int) -> float:
+        return float(self._q[s0, 0])
