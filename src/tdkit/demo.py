@@ -27,6 +27,7 @@ import gymnasium as gym
 import numpy as np
 
 from ._validation import check_positive_int
+from .agent_greedy import agent_policy
 from .dp import evaluate_policy, value_iteration
 from .envs.finite import FiniteMDP
 from .envs.inventory import InventoryEnv
@@ -153,11 +154,9 @@ def _train_one(name: str, run_seed: int, episodes: int, bar: Any = None) -> _Run
     began = time.perf_counter()
     history = train(agent, tally, episodes=episodes, seed=run_seed, callbacks=callbacks)
     seconds = time.perf_counter() - began
-    scenario = tally.unwrapped
-    orders = np.array([
-        int(agent.act(s, mask=scenario.action_mask(s), explore=False))
-        for s in range(scenario.capacity + 1)
-    ])
+    # The greedy order per stock level, asked with the scenario's masks (lost sales:
+    # model state i is stock level i, the observation itself).
+    orders = agent_policy(agent, tally.unwrapped.finite_mdp())
     return _Run(orders=orders, visits=tally.counts.copy(), pair_visits=np.array(agent.visits),
                 returns=history.returns, seconds=seconds)
 
@@ -255,10 +254,9 @@ def run_demo(
 
     env = InventoryEnv()
     n = env.capacity + 1
-    P, R = env.transition_model()
-    mdp = FiniteMDP(P, R, gamma=env.gamma)
+    mdp = env.finite_mdp()
     optimum = value_iteration(mdp, tol=1e-8)
-    start = np.full(n, 1.0 / n)  # reset draws the starting stock uniformly
+    start = np.asarray(mdp.initial)  # reset draws the starting stock uniformly
     best = float(start @ optimum.v)
     fill = np.array([env.capacity - s for s in range(n)])
     baseline = float(start @ evaluate_policy(mdp, fill))

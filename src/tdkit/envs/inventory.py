@@ -256,7 +256,12 @@ class InventoryEnv(gym.Env):
     def finite_mdp(self) -> FiniteMDP:
         """The exact model as a :class:`tdkit.FiniteMDP` with the scenario's discount.
 
-        Its start distribution is that of :meth:`reset`: uniform over ``0..capacity``.
+        Its start distribution is that of :meth:`reset` (uniform over
+        ``0..capacity``) and its action masks are :meth:`action_mask`'s, so the
+        solvers and :func:`tdkit.agent_policy` only consider orders that fit.
+        State ``i`` is the stock level ``stock_levels[i]``, the observation
+        itself without backlog; with backlog, ask an agent about
+        ``stock_levels[i]``, not ``i``.
 
         Examples
         --------
@@ -267,4 +272,5 @@ class InventoryEnv(gym.Env):
         """
         P, R = self.transition_model()
         initial = (self.stock_levels >= 0).astype(np.float64)
-        return FiniteMDP(P, R, gamma=self.gamma, initial=initial / initial.sum())
+        masks = np.array([self.action_mask(int(x)) for x in self.stock_levels])
+        return FiniteMDP(P, R, gamma=self.gamma, initial=initial / initial.sum(), masks=masks)
