@@ -154,3 +154,17 @@ def test_help_under_python_dash_m_names_python_dash_m_tdkit():
     assert done.returncode == 0, done.stderr
     assert done.stdout.startswith("usage: python -m tdkit ")
     assert "demo" in done.stdout and "verify" in done.stdout
+
+
+def test_help_through_an_installed_style_launcher_names_tdkit(tmp_path):
+    # pip's console-script launcher is a file called "tdkit" that calls main();
+    # sys.argv[0] is then that file's path.
+    launcher = tmp_path / "tdkit"
+    launcher.write_text("import sys\nfrom tdkit.__main__ import main\nsys.exit(main())\n",
+                        encoding="utf-8")
+    env = {**os.environ, "PYTHONPATH": os.pathsep.join([str(ROOT / "src"),
+                                                        os.environ.get("PYTHONPATH", "")])}
+    done = subprocess.run([sys.executable, str(launcher), "demo", "--help"],
+                          capture_output=True, text=True, env=env, check=False)
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.startswith("usage: tdkit demo ")
