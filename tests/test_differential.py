@@ -338,3 +338,20 @@ def test_a_step_budget_that_cuts_the_one_episode_leaves_nothing_pending():
         end_episode()
         np.testing.assert_array_equal(agent.table, table)
         assert agent.average_reward == rbar
+
+
+def test_the_check_constants_and_probe_are_what_its_docstring_derives():
+    from scipy import stats
+
+    from tdkit.verify import _average_checks as checks
+
+    # Two-sided 1/1000 quantile of Student's t with N_BATCHES - 1 degrees of freedom.
+    assert checks.T_QUANTILE == pytest.approx(stats.t.ppf(1 - 1 / 2000, checks.N_BATCHES - 1),
+                                              abs=1e-3)
+    # Gains by hand from the stationary distributions (1/3, 0, 2/3, 0) and
+    # (4/9, 1/9, 4/9, 0): 2/3 * 3 = 2 and 4/9 * 1/2 + 4/9 * 3 = 14/9.
+    probe = checks.average_probe()
+    assert relative_value_iteration(probe).gain == pytest.approx(2.0, abs=1e-8)
+    assert tdkit.policy_gain(probe, [0, 0, 0, 0]) == pytest.approx(2 / 3)
+    one_action = checks.average_probe(prediction=True)
+    assert relative_value_iteration(one_action).gain == pytest.approx(14 / 9, abs=1e-8)

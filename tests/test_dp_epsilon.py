@@ -211,3 +211,50 @@ def test_evaluate_policy_refuses_a_masked_action():
     with pytest.raises(InvalidParameterError, match=r"action 1 in state 0.*masks"):
         evaluate_policy(mdp, [1, 0])
     assert mdp.masks[1].all()
+
+
+# ---------------------------------------------------------------- Expected SARSA's fixed point
+@pytest.mark.parametrize("seed", [0, 1, 2])
+@pytest.mark.parametrize("masked", [False, True])
+def test_expected_sarsa_expected_update_is_the_epsilon_greedy_operator(seed, masked):
+    """Differential check: tdkit.ExpectedSarsa's target, averaged over the model's
+    successors, is the ε-greedy Bellman operator of tdkit.dp, so the fixed point
+    that ``value_iteration(exploration=ε)`` computes is a fixed point of the
+    learner's expected update (van Seijen et al. 2009, "A theoretical and
+    empirical analysis of Expected Sarsa") and Q* is not.
+
+    With step size 1 an update sets Q(s, a) to the target itself, so each
+    successor's target is read off exactly; no sampling, no margin beyond
+    rounding (sums of <= 3 terms of size <= 10: 1e-12).
+    """
+    import tdkit
+
+    epsilon = 0.2
+    mdp = tdkit.envs.problems.garnet(8, 3, 3, gamma=0.9, seed=seed)
+    if masked:
+        nxt, probs, _ = mdp.successors
+        masks = np.ones((8, 3), dtype=bool)
+        masks[np.arange(8), np.arange(8) % 3] = False
+        mdp = FiniteMDP.from_successors(nxt, probs, mdp.R, gamma=0.9, masks=masks)
+    next_states, probs, rewards = mdp.successors
+    allowed = np.ones((8, 3), dtype=bool) if mdp.masks is None else mdp.masks
+
+    def expected_update(table):
+        agent = tdkit.ExpectedSarsa(8, 3, gamma=0.9, step_size=1.0, exploration=epsilon, seed=0)
+        out = np.zeros((8, 3))
+        for s, a in zip(*np.nonzero(allowed), strict=True):
+            for k in np.flatnonzero(probs[s, a] > 0):
+                agent._q[...] = table  # white-box: set the learned table directly
+                s2 = int(next_states[s, a, k])
+                agent.observe(int(s), int(a), float(rewards[s, a, k]), s2, False, False,
+                              next_mask=None if mdp.masks is None else allowed[s2].copy())
+                agent.update()
+                out[s, a] += probs[s, a, k] * agent.table[s, a]
+        return out
+
+    fixed = policy_iteration(mdp, exploration=epsilon).q
+    table = np.where(allowed, fixed, 0.0)
+    gap = np.abs(expected_update(table) - table)[allowed]
+    assert gap.max() < 1e-12
+    optimal = np.where(allowed, policy_iteration(mdp).q, 0.0)
+    assert np.abs(expected_update(optimal) - optimal)[allowed].max() > 1e-3

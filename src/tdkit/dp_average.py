@@ -205,6 +205,8 @@ def relative_value_iteration(
     ref = _check_state(owner, mdp, reference_state)
     tau = _APERIODICITY
     rewards = mdp.R
+    if mdp.masks is not None:  # masked actions never enter the max (their q is -inf)
+        rewards = np.where(mdp.masks, rewards, -np.inf)
     w = np.zeros(mdp.n_states)
     span = np.inf
     for iteration in range(1, max_iterations + 1):
@@ -267,7 +269,7 @@ def _policy_matrix(owner: str, mdp: FiniteMDP, policy: Any) -> np.ndarray:
             )
         probs = np.zeros((n, m))
         probs[np.arange(n), array] = 1.0
-        return probs
+        return _allowed_only(owner, mdp, probs)
     if array.shape != (n, m):
         raise InvalidParameterError(
             f"{owner}: policy must be ({n},) action indices or ({n}, {m}) probabilities; got "
@@ -284,6 +286,17 @@ def _policy_matrix(owner: str, mdp: FiniteMDP, policy: Any) -> np.ndarray:
         s = int(np.argmax(off))
         raise InvalidParameterError(
             f"{owner}: policy row {s} sums to {float(sums[s])!r}; every row must sum to 1."
+        )
+    return _allowed_only(owner, mdp, probs)
+
+
+def _allowed_only(owner: str, mdp: FiniteMDP, probs: np.ndarray) -> np.ndarray:
+    """Refuse a policy that gives an action masked by the model positive probability."""
+    if mdp.masks is not None and (probs[~mdp.masks] > 0).any():
+        s, a = (int(i) for i in np.argwhere((probs > 0) & ~mdp.masks)[0])
+        raise InvalidParameterError(
+            f"{owner}: the policy takes action {a} in state {s}, which the model's masks "
+            "forbid (masked); give masked actions probability 0."
         )
     return probs
 
@@ -347,6 +360,12 @@ def policy_gain(mdp: FiniteMDP, policy: Any) -> float:
     InvalidParameterError
         If the policy is malformed, or its chain has more than one closed
         class (multichain), in which case no single gain exists.
+
+    Notes
+    -----
+    The chain is built densely (``S x S``) and solved directly, which suits
+    models up to a few thousand states; :func:`relative_value_iteration`
+    works through ``mdp.expected_next`` and handles the sparse large ones.
 
     References
     ----------

@@ -39,6 +39,9 @@ _PROB_ATOL = 1e-8
 _REMOVAL = "0.3.0"
 """Version that removes the deprecated keyword spellings."""
 
+_CHUNK_ENTRIES = 2**19
+"""Successor slots per block of :meth:`FiniteMDP.expected_next` on large sparse models."""
+
 _DENSE_LIMIT = 2**26
 """Largest number of entries (S * A * S) a sparse model expands to as dense ``P``."""
 
@@ -703,7 +706,18 @@ class FiniteMDP:
         """
         if self._P_flat is not None:
             return (self._P_flat @ v).reshape(self._n_states, self._n_actions)
-        return np.einsum("sak,sak->sa", self._probs, np.take(v, self._next))
+        nxt, probs = self._next, self._probs
+        n, m, k = nxt.shape
+        rows = max(1, _CHUNK_ENTRIES // (m * k))
+        if rows >= n:
+            return np.einsum("sak,sak->sa", probs, np.take(v, nxt))
+        # Blocks of states keep the gathered (rows, A, K) temporary in cache:
+        # 2-3x faster than one pass at 10^5-10^6 states (benchmarks/bench_dp.py).
+        out = np.empty((n, m))
+        for start in range(0, n, rows):
+            block = slice(start, start + rows)
+            np.einsum("sak,sak->sa", probs[block], np.take(v, nxt[block]), out=out[block])
+        return out
 
     # ------------------------------------------------------------------ conversions
     def to_dense(self) -> FiniteMDP:

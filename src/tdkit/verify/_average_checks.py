@@ -54,6 +54,7 @@ __all__ = [
     "N_BATCHES",
     "PROBE_EPISODES",
     "PROBE_TIME_LIMIT",
+    "START_REWARD",
     "T_QUANTILE",
     "average_probe",
     "check_average_reward",
