@@ -106,6 +106,7 @@ def test_results_do_not_depend_on_the_number_of_worker_processes():
         ({"learners": ["Q learning"]}, "learners must be names from"),
         ({"learners": []}, "learners must be names from"),
         ({"jobs": 0}, "jobs"),
+        ({"seed": -1}, "seed"),
     ],
 )
 def test_bad_arguments_are_refused_before_any_training(kwargs, words):

@@ -26,6 +26,7 @@ from typing import Any
 import gymnasium as gym
 import numpy as np
 
+from ._errors import InvalidParameterError
 from ._validation import check_positive_int
 from .agent_greedy import agent_policy
 from .dp import evaluate_policy, value_iteration
@@ -229,7 +230,8 @@ def run_demo(
     Raises
     ------
     InvalidParameterError
-        On a count that is not a positive int or an unknown learner name.
+        On a count that is not a positive int, a negative seed or an unknown
+        learner name.
 
     Examples
     --------
@@ -239,9 +241,8 @@ def run_demo(
     >>> bool(result.learners["Q-learning"].values.max() <= result.optimum + 1e-6)
     True
     """
-    from ._errors import InvalidParameterError
-
     episodes = check_positive_int("run_demo", "episodes", episodes)
+    seed = check_positive_int("run_demo", "seed", seed, minimum=0)
     seeds = check_positive_int("run_demo", "seeds", seeds)
     if jobs is not None:
         jobs = check_positive_int("run_demo", "jobs", jobs)
