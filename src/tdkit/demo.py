@@ -23,7 +23,6 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
-import gymnasium as gym
 import numpy as np
 
 from ._errors import InvalidParameterError
@@ -111,26 +110,6 @@ class DemoResult:
     figures: list[Path]
 
 
-class _Visits(gym.Wrapper):
-    """Counts the stock level at every step of the wrapped scenario."""
-
-    def __init__(self, env: InventoryEnv) -> None:
-        super().__init__(env)
-        self.counts = np.zeros(env.capacity + 1, dtype=np.int64)
-        self._stock = 0
-
-    def reset(self, **kwargs: Any) -> tuple[Any, dict[str, Any]]:
-        obs, info = self.env.reset(**kwargs)
-        self._stock = int(obs)
-        return obs, info
-
-    def step(self, action: Any) -> tuple[Any, float, bool, bool, dict[str, Any]]:
-        self.counts[self._stock] += 1
-        obs, reward, terminated, truncated, info = self.env.step(action)
-        self._stock = int(obs)
-        return obs, float(reward), terminated, truncated, info
-
-
 @dataclasses.dataclass(frozen=True)
 class _Run:
     """What one training run hands back (picklable, for worker processes)."""
@@ -144,8 +123,8 @@ class _Run:
 
 def _train_one(name: str, run_seed: int, episodes: int, bar: Any = None) -> _Run:
     """Train one learner on a fresh scenario; its greedy orders, visit counts and returns."""
-    tally = _Visits(InventoryEnv())
-    agent = DEMO_LEARNERS[name].for_env(tally, step_size=_STEP_SIZE, exploration=_EPSILON,
+    env = InventoryEnv()
+    agent = DEMO_LEARNERS[name].for_env(env, step_size=_STEP_SIZE, exploration=_EPSILON,
                                         seed=run_seed)
 
     def tick(history: Any, agent: Any) -> None:
@@ -153,12 +132,15 @@ def _train_one(name: str, run_seed: int, episodes: int, bar: Any = None) -> _Run
 
     callbacks = () if bar is None else (tick,)
     began = time.perf_counter()
-    history = train(agent, tally, episodes=episodes, seed=run_seed, callbacks=callbacks)
+    history = train(agent, env, episodes=episodes, seed=run_seed, callbacks=callbacks)
     seconds = time.perf_counter() - began
     # The greedy order per stock level, asked with the scenario's masks (lost sales:
     # model state i is stock level i, the observation itself).
-    orders = agent_policy(agent, tally.unwrapped.finite_mdp())
-    return _Run(orders=orders, visits=tally.counts.copy(), pair_visits=np.array(agent.visits),
+    orders = agent_policy(agent, env.finite_mdp())
+    # One-step learners make one update per step, so the update counts per (stock, order)
+    # are the steps taken there, and their row sums the steps at each stock level.
+    pair_visits = np.array(agent.visits)
+    return _Run(orders=orders, visits=pair_visits.sum(axis=1), pair_visits=pair_visits,
                 returns=history.returns, seconds=seconds)
 
 
