@@ -21,7 +21,7 @@ steps at epsilon 0.1, which measures luck in exploration rather than the
 update rules.
 
 Run: ``python benchmarks/bench_learners.py [--steps 10000] [--rounds 5] [--seeds 5]``
-(the defaults take about two minutes).
+(the defaults take about two minutes); ``--smoke`` runs tiny sizes (for CI).
 """
 
 from __future__ import annotations
@@ -162,7 +162,10 @@ def main() -> None:
     parser.add_argument("--seeds", type=int, default=5)
     parser.add_argument("--max-steps", type=int, default=20_000)
     parser.add_argument("--check-every", type=int, default=10)
+    parser.add_argument("--smoke", action="store_true", help="tiny sizes, for CI")
     args = parser.parse_args()
+    if args.smoke:
+        args.steps, args.rounds, args.seeds, args.max_steps = 200, 1, 1, 500
 
     times = cost_table(args.steps, args.rounds)
     base = statistics.median(times["QLearning"])

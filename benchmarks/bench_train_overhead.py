@@ -6,7 +6,8 @@ alternating rounds of one run, so machine noise hits both alike. A third
 column times the environment alone (random actions, no learning): the floor
 any loop pays. Prints the per-step times and the ratios.
 
-Run: ``python benchmarks/bench_train_overhead.py [--steps 200000] [--rounds 5]``
+Run: ``python benchmarks/bench_train_overhead.py [--steps 200000] [--rounds 5]``;
+``--smoke`` runs a tiny size (for CI).
 """
 
 from __future__ import annotations
@@ -79,7 +80,10 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--steps", type=int, default=200_000)
     parser.add_argument("--rounds", type=int, default=5)
+    parser.add_argument("--smoke", action="store_true", help="tiny sizes, for CI")
     args = parser.parse_args()
+    if args.smoke:
+        args.steps, args.rounds = 1_000, 1
     rows: dict[str, list[float]] = {
         "hand-written loop": [],
         "tdkit.train": [],

@@ -31,5 +31,5 @@ def test_a_masked_action_never_enters_the_relative_value_iteration_max():
 
 def test_policy_gain_refuses_a_policy_that_takes_a_masked_action():
     mdp = _two_state(np.array([[True, False], [True, True]]))
-    with pytest.raises(ValueError, match="masked"):
+    with pytest.raises(ValueError, match="masks that action"):
         tdkit.policy_gain(mdp, [1, 0])

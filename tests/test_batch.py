@@ -33,7 +33,7 @@ from tdkit._greedy import greedy_action, greedy_rows
 from tdkit.batch import LEARNERS, BatchResult, train_batch
 from tdkit.dp import action_values, evaluate_policy, value_iteration
 from tdkit.envs.problems import cliff_walking, garnet, maximization_bias
-from tdkit.exploration import EpsilonGreedy, Softmax
+from tdkit.exploration import UCB, EpsilonGreedy
 from tdkit.schedules import Exponential, Linear, Schedule, VisitCount
 
 SCALAR = {
@@ -623,7 +623,7 @@ MDP = garnet(4, 2, 2, seed=0)
         ((MDP, "sarsa"), {"step_size": 1.5}, ["step_size", "1.5", "schedule"]),
         ((MDP, "sarsa"), {"step_size": Linear(2.0, 0.1, 10)}, ["step_size", "Linear"]),
         ((MDP, "sarsa"), {"exploration": 1.5}, ["exploration", "[0, 1]", "1.5"]),
-        ((MDP, "sarsa"), {"exploration": Softmax(1.0)}, ["exploration", "Softmax", "tdkit.train"]),
+        ((MDP, "sarsa"), {"exploration": UCB(1.0)}, ["exploration", "UCB", "tdkit.train"]),
         ((MDP, "sarsa"), {"seed": -1}, ["seed", "-1"]),
         ((MDP, "sarsa"), {"initial_value": float("nan")}, ["initial_value", "nan"]),
         ((MDP, "sarsa"), {"initial_value": np.zeros((3, 2))},

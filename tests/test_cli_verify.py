@@ -110,3 +110,20 @@ def test_demo_subcommand_is_still_there(capsys):
         main(["demo", "--help"])
     assert info.value.code == 0
     assert "--episodes" in capsys.readouterr().out
+
+
+def test_load_factory_leaves_sys_path_as_it_found_it(tmp_path, monkeypatch):
+    import sys
+
+    from tdkit.verify._cli import load_factory
+
+    (tmp_path / "my_factory_mod.py").write_text(
+        "import tdkit\n"
+        "def make(env, seed):\n"
+        "    return tdkit.QLearning.for_env(env, seed=seed)\n"
+    )
+    monkeypatch.chdir(tmp_path)
+    monkeypatch.setattr(sys, "path", [p for p in sys.path if p not in ("", str(tmp_path))])
+    before = list(sys.path)
+    assert callable(load_factory("my_factory_mod:make"))
+    assert sys.path == before

@@ -101,3 +101,69 @@ def test_time_limit_is_not_a_terminal_state_in_training(cls):
 def test_shared_hyper_parameters_are_validated(cls, kwargs, name):
     with pytest.raises(ValueError, match=name):
         cls(3, 2, **kwargs)
+
+
+# ------------------------------------------------------------ signatures and parameters
+ALL = [getattr(learners, name) for name in learners.__all__]
+SHARED = ["step_size", "initial_value", "seed", "state_encoder", "action_encoder"]
+ACTING_WITH_A_POLICY = {"TD0", "TDLambda", "DifferentialTD"}
+
+
+def _required(cls):
+    return {"policy": np.full((4, 3), 1.0 / 3)} if cls.__name__ in ACTING_WITH_A_POLICY else {}
+
+
+@pytest.mark.parametrize("cls", ALL)
+def test_signature_shows_every_keyword_and_get_params_follows_it(cls):
+    import inspect
+
+    params = inspect.signature(cls).parameters
+    assert not any(p.kind in (p.VAR_KEYWORD, p.VAR_POSITIONAL) for p in params.values())
+    assert list(params)[:2] == ["n_states", "n_actions"]
+    assert set(SHARED) <= set(params)
+    assert ("gamma" in params) == (not cls.__name__.startswith("Differential"))  # no discount
+    assert ("exploration" in params) == (cls.__name__ not in ACTING_WITH_A_POLICY)
+    agent = cls(4, 3, seed=0, **_required(cls))
+    got = agent.get_params()
+    assert list(got) == list(params)
+    rebuilt = cls(**got)  # get_params is a complete set of constructor arguments
+    assert rebuilt.get_params().keys() == got.keys()
+    assert repr(agent).startswith(f"{cls.__name__}(n_states=4, n_actions=3, ")
+    assert "seed=0" in repr(agent) and "state_encoder" not in repr(agent)  # None is left out
+
+
+@pytest.mark.parametrize(
+    ("cls", "kwargs", "suggested"),
+    [
+        (tdkit.QLearning, {"alpha": 0.5}, "step_size=0.5"),
+        (tdkit.Sarsa, {"epsilon": 0.2}, "exploration=0.2"),
+        (tdkit.NStepSarsa, {"n_steps": 3}, "n=3"),
+        (tdkit.SarsaLambda, {"lamda": 0.5}, "lam=0.5"),  # a typo: nearest name by difflib
+        (tdkit.DynaQ, {"planing_steps": 3}, "planning_steps=3"),
+        (tdkit.ExpectedSarsa, {"discount": 0.9}, "gamma=0.9"),
+    ],
+)
+def test_unknown_keywords_name_the_nearest_valid_one(cls, kwargs, suggested):
+    with pytest.raises(TypeError, match=suggested) as info:
+        cls(16, 4, **kwargs)
+    assert isinstance(info.value, tdkit.InvalidParameterError)
+    assert cls.__name__ in str(info.value)
+
+
+@pytest.mark.parametrize("cls", [learners.TD0, learners.TDLambda])
+def test_prediction_learners_explain_that_they_do_not_explore(cls):
+    with pytest.raises(tdkit.InvalidParameterError, match=r"do not explore.*policy"):
+        cls(3, 2, policy=np.full((3, 2), 0.5), exploration=0.3)
+
+
+@pytest.mark.parametrize("cls", ALL)
+def test_class_docstrings_are_literal(cls):
+    # A docstring assembled with "+" is invisible to tools that read the source
+    # (ast.get_docstring returns None for a "__doc__ = ... + ..." assignment).
+    import ast
+    import inspect
+
+    tree = ast.parse(inspect.getsource(inspect.getmodule(cls)))
+    (node,) = [n for n in tree.body if isinstance(n, ast.ClassDef) and n.name == cls.__name__]
+    doc = ast.get_docstring(node)
+    assert doc is not None and "References" in doc and "Parameters" in doc

@@ -377,3 +377,19 @@ def test_params_report_algorithm_specific_keywords():
     params = PrioritizedSweeping(3, 2, threshold=0.5, model="counts").get_params()
     assert (params["threshold"], params["model"]) == (0.5, "counts")
     assert "planning_steps=5" in repr(DynaQ(3, 2))
+
+
+def test_greedy_act_and_state_getters_leave_the_learner_unchanged():
+    mask = np.array([True, False])
+    agent = DynaQPlus(3, 2, planning_steps=2, seed=0)
+    agent.act(1, mask=mask, explore=False)  # what evaluate() does
+    assert agent._known_masks == {}
+    agent.act(1, mask=mask)  # behaviour: the mask of state 1 is now known
+    assert agent._known_masks.keys() == {1}
+
+    sweeper = PrioritizedSweeping(3, 1, planning_steps=1, seed=0)
+    sweeper.observe(0, 0, 0.0, 1, False, False)
+    sweeper.observe(1, 0, 1.0, 2, True, False)
+    sweeper.update()
+    first = sweeper._get_extra_state()
+    assert sweeper._get_extra_state() == first  # reading the state advances no counter

@@ -141,7 +141,7 @@ def test_fit_batch_rejects_bad_input():
     # gamma = 1 and a loop that never ends (only truncated): no fixed point
     looping = TD0(1, 1, policy=[[1.0]], gamma=1.0, step_size=1.0)
     with pytest.raises(ValueError, match="no convergence"):
-        looping.fit_batch([[(0, 0, 1.0, 0, False, True)]], max_sweeps=50)
+        looping.fit_batch([[(0, 0, 1.0, 0, False, True)]], max_iterations=50)
     assert agent.fit_batch([]) == 0
 
 
@@ -344,3 +344,13 @@ def test_values_views_params_and_protocol(cls):
     assert "exploration" not in params and params["policy"] is agent.policy
     assert repr(agent).startswith(f"{cls.__name__}(n_states=3")
     assert agent.update() == ()
+
+
+def test_fit_batch_old_keyword_max_sweeps_still_works_with_a_future_warning():
+    agent = tdkit.TD0(3, 1, policy=[[1.0]] * 3, gamma=1.0, step_size=0.5)
+    episodes = [[(0, 0, 0.0, 1, False, False), (1, 0, 1.0, 2, True, False)]]
+    with pytest.warns(FutureWarning, match="0.3.0"):
+        sweeps = agent.fit_batch(episodes, max_sweeps=10_000)
+    assert sweeps == tdkit.TD0(3, 1, policy=[[1.0]] * 3, gamma=1.0, step_size=0.5).fit_batch(
+        episodes, max_iterations=10_000
+    )

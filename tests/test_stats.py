@@ -6,7 +6,7 @@ import math
 
 import numpy as np
 import pytest
-from hypothesis import given, settings
+from hypothesis import assume, given, settings
 from hypothesis import strategies as st
 from scipy import special
 from scipy import stats as sps
@@ -92,6 +92,10 @@ def test_welch_matches_scipy(a, b):
         # Undefined statistic: our documented convention.
         assert ours.p_value == (1.0 if np.mean(a) == np.mean(b) else 0.0)
         return
+    # scipy squares the variances in the Welch-Satterthwaite df, which underflow to 0
+    # below about 1e-154 (a = [0, 0], b = [0, 0, 5e-157] gives df = nan there and 2 here,
+    # the exact value since var(a) = 0); compare only where scipy's formula is exact.
+    assume(min(v for v in (np.var(a) / len(a), np.var(b) / len(b)) if v > 0) > 1e-150)
     assert ours.statistic == pytest.approx(theirs.statistic, rel=1e-9, abs=1e-12)
     assert ours.p_value == pytest.approx(theirs.pvalue, rel=1e-8, abs=1e-12)
     assert ours.mean_difference == pytest.approx(np.mean(a) - np.mean(b), rel=1e-12, abs=1e-9)

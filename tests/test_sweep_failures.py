@@ -15,8 +15,8 @@ import pytest
 
 import tdkit
 from tdkit import InvalidParameterError
-from tdkit._runs import seeded_run
 from tdkit.envs.problems import gridworld_4x4
+from tdkit.runs._one_run import seeded_run
 from tdkit.sweep import SweepResult, SweepRunError, run_sweep
 from tdkit.verify import agent_factory
 
@@ -46,6 +46,12 @@ def failing_agent(env, seed, *, mode="ok", **setting):
         os._exit(3)
     if mode == "warn":
         warnings.warn("the table is larger than it needs to be", UserWarning, stacklevel=1)
+    if mode.startswith("kill-once:"):  # killed from outside the first time only
+        marker = mode.split(":", 1)[1]
+        if not os.path.exists(marker):
+            with open(marker, "w"):
+                pass
+            os.kill(os.getpid(), signal.SIGKILL)
     return tdkit.QLearning.for_env(env, seed=seed, **setting)
 
 
@@ -197,6 +203,19 @@ def test_a_task_that_killed_its_dask_workers_is_named_without_a_re_run():
                   episodes=3, executor=_ClusterThatLosesWorkers())
 
 
+def test_a_worker_killed_from_outside_loses_no_run(tmp_path):
+    # The first attempt of the run dies (as if the machine killed the worker); re-run alone
+    # it finishes, so nothing is blamed, every result is kept, and a warning says why.
+    settings = {"mode": ["ok", f"kill-once:{tmp_path / 'killed'}"]}
+    with pytest.warns(RuntimeWarning, match="each finished when re-run alone"):
+        result = run_sweep(failing_agent, MAKE_ENV, seeds=[0, 1], settings=settings,
+                           episodes=3, max_workers=2)
+    assert len(result) == 4 and not result.failures and result.missing == ()
+    alone = run_sweep(failing_agent, MAKE_ENV, seeds=[0, 1], settings=settings, episodes=3,
+                      max_workers=1)
+    assert _comparable(result) == _comparable(alone)
+
+
 def test_a_broken_user_pool_is_replaced_and_the_remaining_runs_complete():
     settings = {"mode": ["kill", "ok"]}
     with concurrent.futures.ProcessPoolExecutor(2) as pool:
@@ -234,3 +253,35 @@ def test_an_endless_simulator_finishes_under_a_time_limit_or_a_step_budget(worke
         assert run.history.ends.tolist() == [1, 1, 1]  # truncated by the time limit
     budget = run_sweep(MAKE_Q, make_env, seeds=[0, 1], steps=60, max_workers=workers)
     assert [run.history.total_steps for run in budget] == [60, 60]
+
+
+def _long_chain(n: int) -> tdkit.FiniteMDP:
+    # n + 1 states in a row; every action moves one state right; the last one is terminal,
+    # so every episode from state 0 lasts exactly n steps.
+    p = np.zeros((n + 1, 2, n + 1))
+    for s in range(n):
+        p[s, :, s + 1] = 1.0
+    p[n, :, n] = 1.0
+    terminal = np.zeros(n + 1, dtype=bool)
+    terminal[n] = True
+    initial = np.zeros(n + 1)
+    initial[0] = 1.0
+    return tdkit.FiniteMDP(p, np.zeros((n + 1, 2)), gamma=1.0, terminal=terminal,
+                           initial=initial)
+
+
+@pytest.mark.skipif(
+    __import__("multiprocessing").get_start_method() != "fork",
+    reason="the lowered threshold reaches the workers through fork",
+)
+def test_the_endless_episode_warning_of_a_worker_reaches_the_caller(monkeypatch):
+    # The driver warns when an episode under episodes= passes a large step count (10^6 by
+    # default); lowered to 50 here, an episode of 60 steps stands for one that never ends.
+    from tdkit.runs import EndlessEpisodeWarning
+
+    monkeypatch.setattr(tdkit.loop, "_ENDLESS_STEPS", 50)
+    with pytest.warns(EndlessEpisodeWarning,
+                      match=r"run with setting default, seed 0: episode 0 has run for 50 steps"):
+        result = run_sweep(MAKE_Q, _long_chain(60).to_env, seeds=[0, 1], episodes=1,
+                           max_workers=2)
+    assert [run.history.lengths.tolist() for run in result] == [[60], [60]]

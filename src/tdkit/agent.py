@@ -16,32 +16,136 @@ Semantics every tdkit learner honours
 * ``truncated=True`` and not terminated (a time limit): the target
   **does** bootstrap from ``next_obs``; then the episode ends.
 * Greedy choices break ties uniformly at random.
-* ``mask`` (and ``next_mask``) is a boolean array over actions; masked actions
-  are never chosen and never enter a max or expectation in a target.
+* ``mask`` (and ``next_mask``) is a boolean (or 0/1 integer) array over
+  actions; masked actions are never chosen and never enter a max or
+  expectation in a target.
+
+The per-step path
+-----------------
+The public tables are numpy arrays, but one numpy scalar costs several times a
+Python float, so :class:`TabularAgent` reads and writes single entries through
+flat memory views of the same arrays and reads a row as a tuple of floats
+(:meth:`TabularAgent._row`); greedy choices then use the pure-Python forms in
+:mod:`tdkit._greedy`, which pick the same action from the same random numbers
+as the numpy forms. Each distinct mask is checked and turned into an
+:class:`~tdkit._greedy.ActionSet` once (:class:`~tdkit._greedy.ActionSets`);
+transitions carry its read-only boolean array.
 """
 
 from __future__ import annotations
 
-import math
+import functools
+import inspect
+import numbers
 import operator
+import struct
+import sys
+import warnings
 from collections.abc import Sequence
-from typing import Any, ClassVar, Protocol, runtime_checkable
+from typing import Any, ClassVar, NamedTuple, Protocol, runtime_checkable
 
 import numpy as np
 
 from ._errors import InvalidParameterError
-from ._greedy import check_mask, greedy_action
+from ._greedy import ActionSets, greedy_index
 from ._seeding import SeedLike, as_generator
-from ._validation import check_in_range, check_positive_int
-from .exploration import Exploration, as_exploration
+from ._validation import require_in_range, require_known_keywords, require_positive_int
+from .exploration import EpsilonGreedy, Exploration, as_exploration
 from .schedules import Constant, Schedule, as_schedule
 from .tables import ActionValueTable, InitialValue, read_only
 
 __all__ = ["Agent", "TabularAgent", "Transition"]
 
-#: One observed transition after encoding:
-#: (state, action, reward, next_state, terminated, truncated, next_mask)
-Transition = tuple[int, int, float, int, bool, bool, "np.ndarray | None"]
+
+def _real_reward(agent: Any, reward: Any) -> float:
+    """``reward`` as a float when it is a real number (not a bool or a string)."""
+    if isinstance(reward, numbers.Real) and not isinstance(reward, (bool, np.bool_)):
+        return float(reward)
+    raise InvalidParameterError(
+        f"{type(agent).__name__}.observe: reward must be a real number; got {reward!r} of "
+        f"type {type(reward).__name__}. Convert it with float(...) in the simulator. "
+        "Nothing was recorded."
+    )
+
+
+def _flag(agent: Any, name: str, value: Any) -> bool:
+    """A numpy bool as a bool; anything else that is not a bool is refused."""
+    if isinstance(value, np.bool_):
+        return bool(value)
+    raise InvalidParameterError(
+        f"{type(agent).__name__}.observe: {name} must be True or False; got {value!r} of "
+        f"type {type(value).__name__}. Nothing was recorded."
+    )
+
+
+class Transition(NamedTuple):
+    """One observed transition after encoding, in ``observe``'s argument order.
+
+    ``next_mask`` is None or the read-only boolean array of the
+    :class:`~tdkit._greedy.ActionSet` of the mask given to ``observe``.
+    """
+
+    state: int
+    action: int
+    reward: float
+    next_state: int
+    terminated: bool
+    truncated: bool
+    next_mask: np.ndarray | None = None
+
+
+_new_tuple = tuple.__new__  # builds a Transition without the Python-level __new__
+
+_VARIADIC = (inspect.Parameter.VAR_POSITIONAL, inspect.Parameter.VAR_KEYWORD)
+_PARAMETERS: dict[type, tuple[inspect.Parameter, ...]] = {}
+
+
+def constructor_parameters(cls: type) -> tuple[inspect.Parameter, ...]:
+    """The parameters ``cls(...)`` accepts, read from the signatures of ``__init__``.
+
+    An ``__init__`` that takes ``*args`` or ``**kwargs`` passes them on, so
+    the next ``__init__`` along the MRO adds its parameters too.
+    """
+    found = _PARAMETERS.get(cls)
+    if found is not None:
+        return found
+    params: list[inspect.Parameter] = []
+    seen = {"self"}
+    for klass in cls.__mro__:
+        init = klass.__dict__.get("__init__")
+        if init is None:
+            continue
+        passes_on = False
+        for p in inspect.signature(init).parameters.values():
+            if p.kind in _VARIADIC:
+                passes_on = True
+            elif p.name not in seen:
+                seen.add(p.name)
+                params.append(p)
+        if not passes_on:
+            break
+    _PARAMETERS[cls] = found = tuple(params)
+    return found
+
+
+def _checks_keywords(init: Any) -> Any:
+    """Wrap ``__init__`` so an unknown keyword is answered with the nearest valid one.
+
+    The wrapper keeps ``__init__``'s signature (``__wrapped__``), so
+    ``inspect.signature(cls)`` shows every parameter.
+    """
+
+    own = {p.name for p in inspect.signature(init).parameters.values() if p.kind not in _VARIADIC}
+
+    @functools.wraps(init)
+    def __init__(self: Any, *args: Any, **kwargs: Any) -> None:
+        if not kwargs.keys() <= own:
+            cls = type(self)
+            names = tuple(p.name for p in constructor_parameters(cls))
+            require_known_keywords(cls.__name__, kwargs, names, cls._keyword_hints)
+        init(self, *args, **kwargs)
+
+    return __init__
 
 
 @runtime_checkable
@@ -103,9 +207,36 @@ class TabularAgent:
         Episodes ended so far (a transition with ``terminated`` or ``truncated``).
     """
 
-    #: Names of the algorithm-specific constructor keywords (for get_params / store).
-    _extra_params: ClassVar[tuple[str, ...]] = ()
+    #: Advice for keywords a user may bring from another learner (see TD0).
+    _keyword_hints: ClassVar[dict[str, str]] = {}
 
+    # Views onto the tables and other per-process helpers of the per-step path.
+    # They are rebuilt from the tables (``_bind_tables``), never state: slots keep
+    # them out of ``vars(agent)``, and pickling drops them (``__getstate__``).
+    __slots__ = (
+        "__dict__",
+        "__weakref__",
+        "_actions_plain",
+        "_all_actions",
+        "_draw",
+        "_eps_rule",
+        "_qbytes",
+        "_qv",
+        "_row_bytes",
+        "_sets",
+        "_states_plain",
+        "_unpack_row",
+        "_vv",
+        "_width",
+    )
+
+    def __init_subclass__(cls, **kwargs: Any) -> None:
+        super().__init_subclass__(**kwargs)
+        init = cls.__dict__.get("__init__")
+        if init is not None and not hasattr(init, "__wrapped__"):
+            cls.__init__ = _checks_keywords(init)  # type: ignore[method-assign]
+
+    @_checks_keywords
     def __init__(
         self,
         n_states: int,
@@ -120,9 +251,9 @@ class TabularAgent:
         action_encoder: Any = None,
     ) -> None:
         name = type(self).__name__
-        self.n_states = check_positive_int(name, "n_states", n_states)
-        self.n_actions = check_positive_int(name, "n_actions", n_actions)
-        self.gamma = check_in_range(name, "gamma", gamma, 0.0, 1.0)
+        self.n_states = require_positive_int(name, "n_states", n_states)
+        self.n_actions = require_positive_int(name, "n_actions", n_actions)
+        self.gamma = require_in_range(name, "gamma", gamma, 0.0, 1.0)
         self.step_size = step_size
         self.exploration = exploration
         self.initial_value = initial_value
@@ -145,6 +276,36 @@ class TabularAgent:
         self.steps_ = 0
         self.episodes_ = 0
         self._steps_at_episode_end = 0
+        self._bind_tables()
+
+    def _bind_tables(self) -> None:
+        """(Re)build the per-step views onto ``_q`` and ``_visits`` (C-contiguous 2-D arrays)."""
+        q, visits = self._q, self._visits
+        if not (q.flags.c_contiguous and visits.flags.c_contiguous):  # pragma: no cover
+            raise RuntimeError(f"{type(self).__name__}: tables must be C-contiguous.")
+        self._width = width = q.shape[1]
+        self._qbytes = memoryview(q).cast("B")
+        self._qv = self._qbytes.cast("d")
+        self._vv = memoryview(visits).cast("B").cast("q")
+        self._row_bytes = 8 * width
+        self._unpack_row = struct.Struct(f"{width}d").unpack_from
+        self._draw = self._rng.random
+        self._sets = ActionSets(self.n_actions)
+        self._all_actions = range(self.n_actions)
+        explore = self._explore
+        self._eps_rule = explore if type(explore) is EpsilonGreedy else None
+        # Without encoders, a Python int in range is its own index: the per-step
+        # methods test ``type(x) is int and 0 <= x < _states_plain`` before calling
+        # the encoder (-1 when there is an encoder, so the test always fails).
+        self._states_plain = self.n_states if self.state_encoder is None else -1
+        self._actions_plain = self.n_actions if self.action_encoder is None else -1
+
+    def __getstate__(self) -> dict[str, Any]:
+        return dict(self.__dict__)
+
+    def __setstate__(self, state: dict[str, Any]) -> None:
+        self.__dict__.update(state)
+        self._bind_tables()
 
     # ------------------------------------------------------------------ set-up
     def _init_tables(self, initial_value: InitialValue) -> None:
@@ -182,6 +343,11 @@ class TabularAgent:
             self._env_action = aenc.to_env
 
     def _encode_int_state(self, obs: Any) -> int:
+        if isinstance(obs, (bool, np.bool_)):
+            raise InvalidParameterError(
+                f"{type(self).__name__}: observation {obs!r} is a bool, not a state index. "
+                "Pass integer states (or a state_encoder from tdkit.encoders)."
+            )
         try:
             s = operator.index(obs)
         except TypeError:
@@ -259,26 +425,13 @@ class TabularAgent:
         )
 
     def get_params(self) -> dict[str, Any]:
-        """Constructor arguments, as given."""
-        params = {
-            "n_states": self.n_states,
-            "n_actions": self.n_actions,
-            "gamma": self.gamma,
-            "step_size": self.step_size,
-            "exploration": self.exploration,
-            "initial_value": self.initial_value,
-            "seed": self.seed,
-            "state_encoder": self.state_encoder,
-            "action_encoder": self.action_encoder,
-        }
-        for key in self._extra_params:
-            params[key] = getattr(self, key)
-        return params
+        """Constructor arguments, as given: one entry per parameter of the class's signature."""
+        return {p.name: getattr(self, p.name) for p in constructor_parameters(type(self))}
 
     def __repr__(self) -> str:
-        shown = ("n_states", "n_actions", "gamma", "step_size", "exploration", *self._extra_params)
-        params = self.get_params()
-        return f"{type(self).__name__}({', '.join(f'{k}={params[k]!r}' for k in shown)})"
+        """The class and its constructor arguments, leaving out those that are None."""
+        shown = ", ".join(f"{k}={v!r}" for k, v in self.get_params().items() if v is not None)
+        return f"{type(self).__name__}({shown})"
 
     # ------------------------------------------------------------ the verbs
     def act(self, obs: Any, *, mask: Any = None, explore: bool = True) -> Any:
@@ -293,22 +446,57 @@ class TabularAgent:
         explore : bool, default True
             False gives the greedy action (ties broken uniformly at random).
         """
-        s = self._encode(obs)
+        s = obs if type(obs) is int and 0 <= obs < self._states_plain else self._encode(obs)
         if mask is not None:
-            mask = check_mask(mask, self.n_actions)
+            mask = self._sets.get(mask).mask
         return self._env_action(self._choose(s, mask, explore))
 
-    def _behaviour_values(self, s: int) -> np.ndarray:
-        """The values the behaviour policy ranks actions by (a row of the table)."""
-        return self._q[s]
+    def _row(self, s: int) -> tuple[float, ...]:
+        """Row ``s`` of ``_q`` as a tuple of Python floats."""
+        return self._unpack_row(self._qbytes, s * self._row_bytes)
+
+    def _allowed(self, mask: np.ndarray | None) -> Sequence[int]:
+        """The allowed actions of a mask as transitions carry it (all actions for None).
+
+        This is the ``allowed`` argument of the functions in
+        :mod:`tdkit.learners._targets`.
+        """
+        return self._all_actions if mask is None else self._sets.of(mask).indices
 
     def _choose(self, s: int, mask: np.ndarray | None, explore: bool) -> int:
-        values = self._behaviour_values(s)
-        if explore:
+        """The behaviour (``explore``) or greedy action in ``s``; ``mask`` as transitions carry it.
+
+        ε-greedy (:class:`~tdkit.exploration.EpsilonGreedy` itself) runs in
+        pure Python; other rules get the numpy row. Both draw the same numbers.
+        """
+        rule = self._eps_rule
+        if explore and rule is None:
             return self._explore.select(
-                values, mask, self._rng, step=self.steps_, counts=self._counts_for(s)
+                self._q[s], mask, self._rng, step=self.steps_, counts=self._counts_for(s)
             )
-        return greedy_action(values, mask, self._rng)
+        allowed = None if mask is None else self._sets.of(mask)
+        draw = self._draw
+        if explore:
+            eps = rule._fixed  # type: ignore[union-attr]
+            if eps is None:
+                eps = rule.current(self.steps_)  # type: ignore[union-attr]
+            if eps > 0.0 and draw() < eps:
+                if allowed is None:
+                    return int(draw() * self.n_actions)
+                indices = allowed.indices
+                return indices[int(draw() * len(indices))]
+        row = self._unpack_row(self._qbytes, s * self._row_bytes)
+        # A single maximum needs no draw; ties and NaN go to greedy_index.
+        if allowed is None:
+            top = max(row)
+            if row.count(top) == 1 and top == top:
+                return row.index(top)
+        else:
+            values = allowed.take(row)
+            top = max(values)
+            if values.count(top) == 1 and top == top:
+                return allowed.indices[values.index(top)]
+        return greedy_index(row, allowed, draw)
 
     def _counts_for(self, s: int) -> np.ndarray | None:
         """The visit counts of ``s`` when the exploration rule reads them, else None."""
@@ -325,27 +513,54 @@ class TabularAgent:
         *,
         next_mask: Any = None,
     ) -> None:
-        """Record one transition; :meth:`update` applies it."""
-        r = float(reward)
-        if not math.isfinite(r):
+        """Record one transition; :meth:`update` applies it.
+
+        ``reward`` must be a real number (not a bool or a string) and finite;
+        ``terminated`` and ``truncated`` must be booleans (Python or numpy).
+        Anything else raises :class:`~tdkit.InvalidParameterError` and records
+        nothing.
+        """
+        r = reward if type(reward) is float else _real_reward(self, reward)
+        if r - r != 0.0:  # inf or NaN
             raise InvalidParameterError(
                 f"{type(self).__name__}.observe: reward must be finite; got {reward!r}. "
                 "The table was not changed."
             )
+        if terminated is not True and terminated is not False:
+            terminated = _flag(self, "terminated", terminated)
+        if truncated is not True and truncated is not False:
+            truncated = _flag(self, "truncated", truncated)
         if next_mask is not None:
-            next_mask = check_mask(next_mask, self.n_actions, name="next_mask")
-        self._pending.append(
-            (
-                self._encode(obs),
-                self._action_index(action),
-                r,
-                self._encode(next_obs),
-                bool(terminated),
-                bool(truncated),
-                next_mask,
-            )
+            next_mask = self._sets.get(next_mask, "next_mask").mask
+        n = self._states_plain
+        s = obs if type(obs) is int and 0 <= obs < n else self._encode(obs)
+        s2 = next_obs if type(next_obs) is int and 0 <= next_obs < n else self._encode(next_obs)
+        a = (
+            action
+            if type(action) is int and 0 <= action < self._actions_plain
+            else self._action_index(action)
+        )
+        pending = self._pending
+        pending.append(
+            _new_tuple(Transition, (s, a, r, s2, terminated, truncated, next_mask))
         )
         self.steps_ += 1
+        if len(pending) >= self._pile_up_limit:
+            self._warn_pile_up(len(pending))
+
+    #: Pending transitions at which ``observe`` warns that ``update`` is not called
+    #: (no correct loop reaches it: train calls update after every observe).
+    _pile_up_limit: int = 100_000
+
+    def _warn_pile_up(self, count: int) -> None:
+        warnings.warn(
+            f"{type(self).__name__}: {count} transitions were observed without an update(); "
+            "they are held in memory and nothing is learned until update() is called. Call "
+            "agent.update() after each observe() (tdkit.train does).",
+            RuntimeWarning,
+            stacklevel=3,
+        )
+        self._pile_up_limit = sys.maxsize  # warn once per learner
 
     def update(self) -> tuple[float, ...]:
         """Apply the pending updates; return their TD errors (``()`` if none)."""
@@ -401,8 +616,8 @@ class TabularAgent:
         pending = self._pending
         if pending:
             last = pending[-1]
-            if not (last[4] or last[5]):
-                pending[-1] = (*last[:5], True, last[6])
+            if not (last.terminated or last.truncated):
+                pending[-1] = last._replace(truncated=True)
             return self.update()
         if self.steps_ == self._steps_at_episode_end:
             return ()
@@ -432,25 +647,55 @@ class TabularAgent:
         return ()
 
     def _td_step(
-        self, values: np.ndarray, visits: np.ndarray, s: int, a: int, target: float
+        self,
+        values: np.ndarray,
+        visits: np.ndarray,
+        s: int,
+        a: int,
+        target: float,
+        weight: float = 1.0,
     ) -> float:
-        r"""Apply :math:`Q(s,a) \leftarrow Q(s,a) + \alpha\,[G - Q(s,a)]`; return the TD error.
+        r"""Apply :math:`Q(s,a) \leftarrow Q(s,a) + \alpha\,\rho\,[G - Q(s,a)]`; return the error.
 
+        ``weight`` is :math:`\rho` (an importance-sampling ratio; 1 for
+        on-policy updates), and the returned error is :math:`\rho\,[G - Q(s,a)]`.
         ``visits[s, a]`` is incremented first, so per-pair schedules see the
         count including this update.
         """
+        if values is self._q and visits is self._visits:
+            k = s * self._width + a
+            vv = self._vv
+            n = vv[k] + 1
+            vv[k] = n
+            alpha = self._alpha_const
+            if alpha is None:
+                alpha = self._step_size.value(self.steps_, n)
+            qv = self._qv
+            old = qv[k]
+            delta = target - old
+            if weight != 1.0:
+                delta = weight * delta
+            qv[k] = old + alpha * delta
+            return float(delta)
         alpha = self._count_visit(visits, s, a)
         delta = target - values[s, a]
+        if weight != 1.0:
+            delta = weight * delta
         values[s, a] += alpha * delta
         return float(delta)
 
     def _count_visit(self, visits: np.ndarray, s: int, a: int) -> float:
         """Increment ``visits[s, a]`` and return the step size for this update."""
-        n = visits[s, a] + 1
-        visits[s, a] = n
+        if visits is self._visits:
+            k = s * self._width + a
+            n = self._vv[k] + 1
+            self._vv[k] = n
+        else:
+            n = int(visits[s, a]) + 1
+            visits[s, a] = n
         alpha = self._alpha_const
         if alpha is None:
-            alpha = self._step_size.value(self.steps_, int(n))
+            alpha = self._step_size.value(self.steps_, n)
         return alpha
 
     # ------------------------------------------------------------ inspection

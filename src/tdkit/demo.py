@@ -26,7 +26,7 @@ from typing import Any
 import numpy as np
 
 from ._errors import InvalidParameterError
-from ._validation import check_positive_int
+from ._validation import require_positive_int
 from .agent_greedy import agent_policy
 from .dp import evaluate_policy, value_iteration
 from .envs.finite import FiniteMDP
@@ -223,11 +223,11 @@ def run_demo(
     >>> bool(result.learners["Q-learning"].values.max() <= result.optimum + 1e-6)
     True
     """
-    episodes = check_positive_int("run_demo", "episodes", episodes)
-    seed = check_positive_int("run_demo", "seed", seed, minimum=0)
-    seeds = check_positive_int("run_demo", "seeds", seeds)
+    episodes = require_positive_int("run_demo", "episodes", episodes)
+    seed = require_positive_int("run_demo", "seed", seed, minimum=0)
+    seeds = require_positive_int("run_demo", "seeds", seeds)
     if jobs is not None:
-        jobs = check_positive_int("run_demo", "jobs", jobs)
+        jobs = require_positive_int("run_demo", "jobs", jobs)
     names = list(DEMO_LEARNERS) if learners is None else list(learners)
     unknown = [n for n in names if n not in DEMO_LEARNERS]
     if unknown or not names:

@@ -35,7 +35,9 @@ from typing import Any, NamedTuple
 import numpy as np
 
 from ._errors import InvalidParameterError, TdkitError
-from ._validation import check_in_range, check_positive_int
+from ._model_args import _check_mdp, _check_values, _policy_probabilities
+from ._progress import progress_bar
+from ._validation import require_in_range, require_positive_int
 from .envs.finite import FiniteMDP
 
 __all__ = [
@@ -151,86 +153,6 @@ class GreedyPolicy(NamedTuple):
 
 
 # ---------------------------------------------------------------- validation
-def _check_mdp(owner: str, mdp: Any) -> FiniteMDP:
-    if not isinstance(mdp, FiniteMDP):
-        raise InvalidParameterError(
-            f"{owner}: mdp must be a tdkit.FiniteMDP; got {type(mdp).__name__}. "
-            "Build one with FiniteMDP(P, R, gamma=...) or FiniteMDP.from_gymnasium(env)."
-        )
-    return mdp
-
-
-def _check_values(owner: str, name: str, values: Any, shape: tuple[int, ...]) -> np.ndarray:
-    array = np.asarray(values, dtype=np.float64)
-    if array.shape != shape:
-        raise InvalidParameterError(
-            f"{owner}: {name} must have shape {shape}; got shape {array.shape}."
-        )
-    if not np.isfinite(array).all():
-        raise InvalidParameterError(f"{owner}: {name} must be finite; got {values!r:.80}.")
-    return array
-
-
-def _policy_probabilities(owner: str, mdp: FiniteMDP, policy: Any) -> np.ndarray:
-    """Return ``policy`` as an (S, A) probability array, validated."""
-    n, m = mdp.n_states, mdp.n_actions
-    array = np.asarray(policy)
-    if array.shape == (n,):
-        if not np.issubdtype(array.dtype, np.integer):
-            if not (np.issubdtype(array.dtype, np.floating) and (array == np.round(array)).all()):
-                raise InvalidParameterError(
-                    f"{owner}: a deterministic policy must hold action indices (ints); "
-                    f"got dtype {array.dtype}."
-                )
-            array = array.astype(np.intp)
-        bad = (array < 0) | (array >= m)
-        if bad.any():
-            s = int(np.argmax(bad))
-            raise InvalidParameterError(
-                f"{owner}: policy[{s}] = {int(array[s])!r} is not an action index in [0, {m})."
-            )
-        probs = np.zeros((n, m))
-        probs[np.arange(n), array] = 1.0
-        return _check_allowed(owner, mdp, probs)
-    if array.shape == (n, m):
-        probs = _check_values(owner, "policy", array, (n, m))
-        if (probs < 0).any():
-            s, a = (int(i) for i in np.argwhere(probs < 0)[0])
-            raise InvalidParameterError(
-                f"{owner}: policy[{s}, {a}] = {float(probs[s, a])!r} is negative; action "
-                "probabilities must be >= 0."
-            )
-        sums = probs.sum(axis=1)
-        off = np.abs(sums - 1.0) > 1e-8
-        if off.any():
-            s = int(np.argmax(off))
-            raise InvalidParameterError(
-                f"{owner}: policy[{s}, :] sums to {float(sums[s])!r}; action probabilities of "
-                "each state must sum to 1."
-            )
-        return _check_allowed(owner, mdp, probs / sums[:, None])
-    raise InvalidParameterError(
-        f"{owner}: policy must have shape (S,) = ({n},) (action indices) or (S, A) = "
-        f"({n}, {m}) (probabilities); got shape {array.shape}."
-    )
-
-
-def _check_allowed(owner: str, mdp: FiniteMDP, probs: np.ndarray) -> np.ndarray:
-    """Refuse a policy that gives a masked action positive probability."""
-    masks = mdp.masks
-    if masks is not None:
-        bad = (probs > 0) & ~masks
-        if bad.any():
-            s, a = (int(i) for i in np.argwhere(bad)[0])
-            raise InvalidParameterError(
-                f"{owner}: the policy takes action {a} in state {s} with probability "
-                f"{float(probs[s, a])!r}, but the model masks that action there "
-                f"(mdp.masks[{s}, {a}] is False). Use only allowed actions, e.g. "
-                "tdkit.agent_policy(agent, mdp) for a learner's greedy policy."
-            )
-    return probs
-
-
 # ---------------------------------------------------------------- Bellman operators
 def _action_values(mdp: FiniteMDP, v: np.ndarray) -> np.ndarray:
     # Terminal rows of the model are zero-reward self-loops, so once v is 0 on
@@ -440,7 +362,7 @@ def greedy_policy(q: Any, *, atol: float = 1e-9) -> GreedyPolicy:
             f"{owner}: q[{s}, :] is -inf everywhere; every state needs a finite action value."
         )
     _check_values(owner, "q", np.where(excluded, 0.0, array), array.shape)
-    atol = check_in_range(owner, "atol", atol, 0.0, math.inf)
+    atol = require_in_range(owner, "atol", atol, 0.0, math.inf)
     maximisers = array >= array.max(axis=1, keepdims=True) - atol
     return GreedyPolicy(np.argmax(maximisers, axis=1), maximisers)
 
@@ -480,7 +402,7 @@ def epsilon_greedy_policy(
     array([[0.06666667, 0.        , 0.86666667, 0.06666667]])
     """
     owner = "epsilon_greedy_policy"
-    epsilon = check_in_range(owner, "epsilon", epsilon, 0.0, 1.0)
+    epsilon = require_in_range(owner, "epsilon", epsilon, 0.0, 1.0)
     array = np.asarray(q, dtype=np.float64)
     if masks is None:
         allowed = np.ones(array.shape, dtype=bool)
@@ -619,16 +541,8 @@ def _evaluate_krylov(chain: FiniteMDP, tol: float) -> tuple[np.ndarray, bool] | 
 
 
 def _progress_bar(owner: str, enabled: bool, total: int) -> Any:
-    """A tqdm bar counting sweeps (tqdm imported only when asked for)."""
-    if not enabled:
-        return None
-    try:
-        from tqdm.auto import tqdm
-    except ImportError as exc:  # pragma: no cover - depends on the environment
-        raise ImportError(
-            f"{owner}: progress=True needs tqdm: pip install 'tdkit[progress]'"
-        ) from exc
-    return tqdm(total=total, unit="sweep", desc=owner)
+    """A bar counting sweeps (:func:`tdkit._progress.progress_bar`), or None."""
+    return progress_bar(owner, total, enabled, unit="sweep", desc=owner)
 
 
 def _fixed_point(
@@ -817,9 +731,9 @@ def evaluate_policy(
             f"{owner}: method must be 'auto', 'direct', 'sparse' or 'iterative'; "
             f"got {method!r}."
         )
-    tol = check_in_range(owner, "tol", tol, 0.0, math.inf, low_open=True)
+    tol = require_in_range(owner, "tol", tol, 0.0, math.inf, low_open=True)
     cap = DEFAULT_MAX_ITERATIONS if max_iterations is None else max_iterations
-    cap = check_positive_int(owner, "max_iterations", cap)
+    cap = require_positive_int(owner, "max_iterations", cap)
     return _evaluate(owner, mdp, pi, method=method, tol=tol, max_iterations=cap)
 
 
@@ -867,7 +781,7 @@ def _check_exploration(owner: str, exploration: Any) -> float:
             f"{owner}: exploration must be a float in [0, 1] (the ε of ε-greedy); got "
             f"{exploration!r}."
         )
-    return check_in_range(owner, "exploration", float(exploration), 0.0, 1.0)
+    return require_in_range(owner, "exploration", float(exploration), 0.0, 1.0)
 
 
 def _reach_terminal(mdp: FiniteMDP) -> tuple[np.ndarray, np.ndarray]:
@@ -1040,10 +954,10 @@ def value_iteration(
     """
     owner = "value_iteration"
     mdp = _check_mdp(owner, mdp)
-    tol = check_in_range(owner, "tol", tol, 0.0, math.inf, low_open=True)
+    tol = require_in_range(owner, "tol", tol, 0.0, math.inf, low_open=True)
     epsilon = _check_exploration(owner, exploration)
     cap = DEFAULT_MAX_ITERATIONS if max_iterations is None else max_iterations
-    cap = check_positive_int(owner, "max_iterations", cap)
+    cap = require_positive_int(owner, "max_iterations", cap)
     gamma = mdp.gamma
     v = (
         np.zeros(mdp.n_states)
@@ -1133,8 +1047,8 @@ def policy_iteration(
     """
     owner = "policy_iteration"
     mdp = _check_mdp(owner, mdp)
-    max_iterations = check_positive_int(owner, "max_iterations", max_iterations)
-    atol = check_in_range(owner, "atol", atol, 0.0, math.inf)
+    max_iterations = require_positive_int(owner, "max_iterations", max_iterations)
+    atol = require_in_range(owner, "atol", atol, 0.0, math.inf)
     epsilon = _check_exploration(owner, exploration)
     masks = mdp.masks
     if initial_policy is None:

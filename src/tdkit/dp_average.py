@@ -45,7 +45,8 @@ from typing import Any
 import numpy as np
 
 from ._errors import InvalidParameterError
-from ._validation import check_in_range, check_positive_int
+from ._model_args import _check_mdp, _policy_probabilities
+from ._validation import require_in_range, require_positive_int
 from .envs.finite import FiniteMDP
 
 __all__ = ["AverageSolution", "policy_gain", "relative_value_iteration"]
@@ -91,15 +92,6 @@ class AverageSolution:
 
 
 # ---------------------------------------------------------------- helpers
-def _check_mdp(owner: str, mdp: Any) -> FiniteMDP:
-    if not isinstance(mdp, FiniteMDP):
-        raise InvalidParameterError(
-            f"{owner}: mdp must be a tdkit.FiniteMDP; got {type(mdp).__name__}. "
-            "Build one with FiniteMDP(P, R, gamma=...) (gamma is ignored here)."
-        )
-    return mdp
-
-
 def _expected_next(mdp: FiniteMDP, h: np.ndarray) -> np.ndarray:
     r""":math:`\sum_{s'} P(s' \mid s, a) h(s')` with a terminal successor read as a restart.
 
@@ -200,8 +192,8 @@ def relative_value_iteration(
     """
     owner = "relative_value_iteration"
     mdp = _check_mdp(owner, mdp)
-    tol = check_in_range(owner, "tol", tol, 0.0, np.inf, low_open=True, high_open=True)
-    max_iterations = check_positive_int(owner, "max_iterations", max_iterations)
+    tol = require_in_range(owner, "tol", tol, 0.0, np.inf, low_open=True, high_open=True)
+    max_iterations = require_positive_int(owner, "max_iterations", max_iterations)
     ref = _check_state(owner, mdp, reference_state)
     tau = _APERIODICITY
     rewards = mdp.R
@@ -251,56 +243,6 @@ def _check_state(owner: str, mdp: FiniteMDP, state: Any) -> int:
 
 
 # ---------------------------------------------------------------- gain of a policy
-def _policy_matrix(owner: str, mdp: FiniteMDP, policy: Any) -> np.ndarray:
-    """``policy`` as validated (S, A) probabilities."""
-    n, m = mdp.n_states, mdp.n_actions
-    array = np.asarray(policy)
-    if array.shape == (n,):
-        if not np.issubdtype(array.dtype, np.integer):
-            raise InvalidParameterError(
-                f"{owner}: a deterministic policy must hold action indices (ints); got dtype "
-                f"{array.dtype}."
-            )
-        bad = (array < 0) | (array >= m)
-        if bad.any():
-            s = int(np.argmax(bad))
-            raise InvalidParameterError(
-                f"{owner}: policy[{s}] = {int(array[s])!r} is not an action index in [0, {m})."
-            )
-        probs = np.zeros((n, m))
-        probs[np.arange(n), array] = 1.0
-        return _allowed_only(owner, mdp, probs)
-    if array.shape != (n, m):
-        raise InvalidParameterError(
-            f"{owner}: policy must be ({n},) action indices or ({n}, {m}) probabilities; got "
-            f"shape {array.shape}."
-        )
-    probs = np.asarray(array, dtype=np.float64)
-    if not np.isfinite(probs).all() or (probs < 0).any():
-        raise InvalidParameterError(
-            f"{owner}: policy probabilities must be finite and >= 0; got {policy!r:.80}."
-        )
-    sums = probs.sum(axis=1)
-    off = ~mdp.terminal & (np.abs(sums - 1.0) > 1e-8)
-    if off.any():
-        s = int(np.argmax(off))
-        raise InvalidParameterError(
-            f"{owner}: policy row {s} sums to {float(sums[s])!r}; every row must sum to 1."
-        )
-    return _allowed_only(owner, mdp, probs)
-
-
-def _allowed_only(owner: str, mdp: FiniteMDP, probs: np.ndarray) -> np.ndarray:
-    """Refuse a policy that gives an action masked by the model positive probability."""
-    if mdp.masks is not None and (probs[~mdp.masks] > 0).any():
-        s, a = (int(i) for i in np.argwhere((probs > 0) & ~mdp.masks)[0])
-        raise InvalidParameterError(
-            f"{owner}: the policy takes action {a} in state {s}, which the model's masks "
-            "forbid (masked); give masked actions probability 0."
-        )
-    return probs
-
-
 def _restart_chain(mdp: FiniteMDP, probs: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """The policy's chain on the live states, with terminal successors read as restarts."""
     live = np.flatnonzero(~mdp.terminal)
@@ -385,7 +327,7 @@ def policy_gain(mdp: FiniteMDP, policy: Any) -> float:
     """
     owner = "policy_gain"
     mdp = _check_mdp(owner, mdp)
-    probs = _policy_matrix(owner, mdp, policy)
+    probs = _policy_probabilities(owner, mdp, policy)
     chain, rewards = _restart_chain(mdp, probs)
     n = chain.shape[0]
     adjacency = chain > 0

@@ -73,7 +73,8 @@ from typing import Any
 import numpy as np
 
 from ._errors import InvalidParameterError
-from ._validation import check_in_range, check_positive_int
+from ._model_args import _check_mdp, _check_values
+from ._validation import require_in_range, require_positive_int
 from .dp import (
     DEFAULT_MAX_ITERATIONS,
     ConvergenceError,
@@ -81,8 +82,6 @@ from .dp import (
     _allowed_counts,
     _backup,
     _check_exploration,
-    _check_mdp,
-    _check_values,
     _finish,
     _look_ahead,
     _progress_bar,
@@ -352,12 +351,12 @@ def solve(
         raise InvalidParameterError(
             f"{owner}: method must be one of {', '.join(map(repr, METHODS))}; got {method!r}."
         )
-    tol = check_in_range(owner, "tol", tol, 0.0, math.inf, low_open=True)
+    tol = require_in_range(owner, "tol", tol, 0.0, math.inf, low_open=True)
     epsilon = _check_exploration(owner, exploration)
     cap = DEFAULT_MAX_ITERATIONS if max_iterations is None else max_iterations
-    cap = check_positive_int(owner, "max_iterations", cap)
-    evaluation_sweeps = check_positive_int(owner, "evaluation_sweeps", evaluation_sweeps)
-    check_every = check_positive_int(owner, "check_every", check_every)
+    cap = require_positive_int(owner, "max_iterations", cap)
+    evaluation_sweeps = require_positive_int(owner, "evaluation_sweeps", evaluation_sweeps)
+    check_every = require_positive_int(owner, "check_every", check_every)
     gamma = mdp.gamma
     if method == "auto":
         if gamma == 0.0:

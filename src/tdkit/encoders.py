@@ -52,7 +52,7 @@ import numpy as np
 
 from ._errors import CapacityError, InvalidParameterError
 from ._text import short as _short
-from ._validation import check_positive_int
+from ._validation import require_positive_int
 
 __all__ = [
     "ActionEncoder",
@@ -158,7 +158,7 @@ class DiscreteEncoder(_Encoder):
 
     def __init__(self, n: int, start: int = 0) -> None:
         owner = type(self).__name__
-        self.n_states = self.n_actions = check_positive_int(owner, "n", n)
+        self.n_states = self.n_actions = require_positive_int(owner, "n", n)
         if isinstance(start, bool) or not isinstance(start, numbers.Integral):
             raise InvalidParameterError(f"{owner}: start must be an integer; got {start!r}.")
         self.start = int(start)
@@ -585,7 +585,7 @@ class HashIndexEncoder(_Encoder):
     kind = "hash_index"
 
     def __init__(self, capacity: int, states: Iterable[Hashable] = ()) -> None:
-        self.capacity = check_positive_int(type(self).__name__, "capacity", capacity)
+        self.capacity = require_positive_int(type(self).__name__, "capacity", capacity)
         self.n_states = self.n_actions = self.capacity
         self._index: dict[Hashable, int] = {}
         self._states: list[Hashable] = []

@@ -30,7 +30,7 @@ import numpy as np
 
 from ._errors import InvalidParameterError
 from ._greedy import greedy_action, masked_max, masked_mean, uniform_action
-from ._validation import check_real
+from ._validation import require_real
 from .schedules import Constant, Schedule, as_schedule, schedule_from_description
 
 __all__ = ["UCB", "EpsilonGreedy", "Exploration", "Softmax", "as_exploration"]
@@ -221,7 +221,7 @@ class UCB(Exploration):
     uses_counts: ClassVar[bool] = True
 
     def __init__(self, c: float = 2.0) -> None:
-        self.c = check_real("UCB", "c", c)
+        self.c = require_real("UCB", "c", c)
         if self.c < 0:
             raise InvalidParameterError(f"UCB: c must be >= 0; got {c!r}.")
 

@@ -21,7 +21,7 @@ import numpy as np
 
 from ._errors import InvalidParameterError
 from ._progress import progress_bar
-from ._validation import check_positive_int
+from ._validation import require_positive_int
 from .envs import adapt
 from .history import History
 from .runs.episode import run_episode
@@ -126,12 +126,12 @@ def train(
             "train: give episodes=... or steps=... (or both); got neither."
         )
     if episodes is not None:
-        episodes = check_positive_int("train", "episodes", episodes)
+        episodes = require_positive_int("train", "episodes", episodes)
     if steps is not None:
-        steps = check_positive_int("train", "steps", steps)
+        steps = require_positive_int("train", "steps", steps)
     if max_episode_steps is not None:
-        max_episode_steps = check_positive_int("train", "max_episode_steps", max_episode_steps)
-    checkpoint_every = check_positive_int("train", "checkpoint_every", checkpoint_every)
+        max_episode_steps = require_positive_int("train", "max_episode_steps", max_episode_steps)
+    checkpoint_every = require_positive_int("train", "checkpoint_every", checkpoint_every)
     if isinstance(env, gymnasium.vector.VectorEnv):
         extras = {"checkpoint": checkpoint, "resume": resume, "callbacks": tuple(callbacks),
                   "progress": progress}
@@ -310,9 +310,9 @@ def evaluate(
     numpy.ndarray
         Shape ``(episodes,)``, the undiscounted return of each episode.
     """
-    episodes = check_positive_int("evaluate", "episodes", episodes)
+    episodes = require_positive_int("evaluate", "episodes", episodes)
     if max_episode_steps is not None:
-        max_episode_steps = check_positive_int("evaluate", "max_episode_steps", max_episode_steps)
+        max_episode_steps = require_positive_int("evaluate", "max_episode_steps", max_episode_steps)
     env = adapt(env)
     check_agent_fits(agent, env, owner="evaluate")
     root = root_sequence(seed, owner="evaluate")

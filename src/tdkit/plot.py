@@ -29,12 +29,12 @@ from typing import Any
 import numpy as np
 
 from ._errors import InvalidParameterError
-from ._results import RunRecord, SweepResult, setting_label
 from ._seeding import SeedLike, as_generator
-from ._validation import check_in_range, check_positive_int
+from ._validation import require_in_range, require_positive_int
 from .envs.finite import FiniteMDP
 from .envs.problems import KING_ACTIONS
 from .history import History
+from .runs._results import RunRecord, SweepResult, setting_label
 from .stats import bootstrap_band
 
 __all__ = ["plot_returns", "plot_values", "moving_average"]
@@ -254,10 +254,10 @@ def plot_returns(
     ['toy']
     """
     owner = "plot_returns"
-    window = check_positive_int(owner, "window", window)
-    confidence = check_in_range(owner, "confidence", confidence, 0.0, 1.0,
+    window = require_positive_int(owner, "window", window)
+    confidence = require_in_range(owner, "confidence", confidence, 0.0, 1.0,
                                 low_open=True, high_open=True)
-    n_resamples = check_positive_int(owner, "n_resamples", n_resamples)
+    n_resamples = require_positive_int(owner, "n_resamples", n_resamples)
     series = _series(owner, data, label)
     rng = as_generator(seed, owner=owner)
     ax = _axes(owner, ax)

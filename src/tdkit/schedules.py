@@ -19,7 +19,7 @@ from abc import ABC, abstractmethod
 from typing import Any
 
 from ._errors import InvalidParameterError
-from ._validation import check_in_range, check_positive_int, check_real
+from ._validation import require_in_range, require_positive_int, require_real
 
 __all__ = [
     "Constant",
@@ -71,7 +71,7 @@ class Constant(Schedule):
     """
 
     def __init__(self, value: float) -> None:
-        self.constant = check_real("Constant", "value", value)
+        self.constant = require_real("Constant", "value", value)
 
     def value(self, step: int, visits: int = 1) -> float:
         return self.constant
@@ -96,9 +96,9 @@ class Linear(Schedule):
     """
 
     def __init__(self, start: float, end: float, duration: int) -> None:
-        self.start = check_real("Linear", "start", start)
-        self.end = check_real("Linear", "end", end)
-        self.duration = check_positive_int("Linear", "duration", duration)
+        self.start = require_real("Linear", "start", start)
+        self.end = require_real("Linear", "end", end)
+        self.duration = require_positive_int("Linear", "duration", duration)
 
     def value(self, step: int, visits: int = 1) -> float:
         frac = step / self.duration
@@ -126,9 +126,9 @@ class Exponential(Schedule):
     """
 
     def __init__(self, start: float, decay: float, minimum: float = 0.0) -> None:
-        self.start = check_real("Exponential", "start", start)
-        self.decay = check_in_range("Exponential", "decay", decay, 0.0, 1.0, low_open=True)
-        self.minimum = check_real("Exponential", "minimum", minimum)
+        self.start = require_real("Exponential", "start", start)
+        self.decay = require_in_range("Exponential", "decay", decay, 0.0, 1.0, low_open=True)
+        self.minimum = require_real("Exponential", "minimum", minimum)
         if self.minimum > self.start:
             raise InvalidParameterError(
                 f"Exponential: minimum must not exceed start; got minimum={minimum!r} > "
@@ -180,7 +180,7 @@ class VisitCount(Schedule):
     per_visit = True
 
     def __init__(self, power: float = 0.8) -> None:
-        self.power = check_in_range(
+        self.power = require_in_range(
             "VisitCount", "power", power, 0.0, 1.0, low_open=True,
             hint="Use a value in (0.5, 1] for guaranteed convergence.",
         )
@@ -245,5 +245,5 @@ def as_schedule(
             )
         return value
     return Constant(
-        check_in_range(owner, name, value, low, high, low_open=low_open, hint=hint)
+        require_in_range(owner, name, value, low, high, low_open=low_open, hint=hint)
     )

@@ -46,7 +46,7 @@ import numpy as np
 
 from ._errors import InvalidParameterError
 from ._seeding import SeedLike, as_generator
-from ._validation import check_in_range, check_positive_int
+from ._validation import require_in_range, require_positive_int
 
 __all__ = [
     # point estimates
@@ -237,9 +237,9 @@ def bootstrap_ci(
         raise InvalidParameterError(
             f"{owner}: scores must have shape (runs,) or (runs, tasks); got shape {array.shape}."
         )
-    confidence = check_in_range(owner, "confidence", confidence, 0.0, 1.0,
+    confidence = require_in_range(owner, "confidence", confidence, 0.0, 1.0,
                                 low_open=True, high_open=True)
-    n_resamples = check_positive_int(owner, "n_resamples", n_resamples)
+    n_resamples = require_positive_int(owner, "n_resamples", n_resamples)
     if isinstance(statistic, str):
         if statistic not in _STATISTICS:
             raise InvalidParameterError(
@@ -319,9 +319,9 @@ def bootstrap_band(
         raise InvalidParameterError(
             f"{owner}: curves must have shape (runs, points); got shape {table.shape}."
         )
-    confidence = check_in_range(owner, "confidence", confidence, 0.0, 1.0,
+    confidence = require_in_range(owner, "confidence", confidence, 0.0, 1.0,
                                 low_open=True, high_open=True)
-    n_resamples = check_positive_int(owner, "n_resamples", n_resamples)
+    n_resamples = require_positive_int(owner, "n_resamples", n_resamples)
     rng = as_generator(seed, owner=owner)
     runs = table.shape[0]
     index = _resample_runs(rng, runs, n_resamples, 1)[:, :, 0]
@@ -395,7 +395,7 @@ def summarize_scores(
     """
     owner = "summarize_scores"
     array = _scores(owner, scores).ravel()
-    confidence = check_in_range(owner, "confidence", confidence, 0.0, 1.0,
+    confidence = require_in_range(owner, "confidence", confidence, 0.0, 1.0,
                                 low_open=True, high_open=True)
     if array.size >= 2:
         mean_ci, iqm_ci = (

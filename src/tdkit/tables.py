@@ -13,7 +13,7 @@ import numbers
 import numpy as np
 
 from ._errors import InvalidParameterError
-from ._validation import check_positive_int
+from ._validation import require_positive_int
 
 __all__ = ["ActionValueTable", "InitialValue", "initial_values"]
 
@@ -93,8 +93,8 @@ class ActionValueTable:
         rng: np.random.Generator,
         owner: str = "ActionValueTable",
     ) -> None:
-        n_states = check_positive_int(owner, "n_states", n_states)
-        n_actions = check_positive_int(owner, "n_actions", n_actions)
+        n_states = require_positive_int(owner, "n_states", n_states)
+        n_actions = require_positive_int(owner, "n_actions", n_actions)
         self.values = initial_values((n_states, n_actions), initial_value, rng, owner=owner)
         self.visits = np.zeros((n_states, n_actions), dtype=np.int64)
 

@@ -29,7 +29,7 @@ from typing import Any
 import numpy as np
 
 from .._errors import InvalidParameterError
-from .._validation import check_in_range, check_positive_int
+from .._validation import require_in_range, require_positive_int
 from .finite import FiniteMDP
 from .model_env import FiniteMDPEnv
 
@@ -98,15 +98,15 @@ def access_control(
     (10, 0)
     """
     owner = "access_control"
-    n_servers = check_positive_int(owner, "n_servers", n_servers)
+    n_servers = require_positive_int(owner, "n_servers", n_servers)
     pay = np.asarray(payments, dtype=np.float64) if _is_sequence(payments) else None
     if pay is None or pay.ndim != 1 or pay.size == 0 or not np.isfinite(pay).all():
         raise InvalidParameterError(
             f"{owner}: payments must be a non-empty sequence of finite rewards, one per "
             f"priority; got {payments!r}."
         )
-    p_free = check_in_range(owner, "p_free", p_free, 0.0, 1.0)
-    gamma = check_in_range(owner, "gamma", gamma, 0.0, 1.0)
+    p_free = require_in_range(owner, "p_free", p_free, 0.0, 1.0)
+    gamma = require_in_range(owner, "gamma", gamma, 0.0, 1.0)
     n_pri = pay.size
     n_states = (n_servers + 1) * n_pri
     P = np.zeros((n_states, 2, n_states))
@@ -175,4 +175,4 @@ def access_control_env(
     (True, False, False)
     """
     mdp = access_control(n_servers=n_servers, payments=payments, p_free=p_free)
-    return mdp.to_env(max_steps=max_steps)
+    return mdp.to_env(max_episode_steps=max_steps)

@@ -26,7 +26,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from .._errors import EnvironmentProtocolError, InvalidParameterError
-from .._validation import check_in_range
+from .._validation import require_in_range
 
 if TYPE_CHECKING:
     from .model_env import FiniteMDPEnv
@@ -329,7 +329,7 @@ class FiniteMDP:
             raise InvalidParameterError(
                 f"{owner}: P must have at least one action; got shape {probs.shape}."
             )
-        gamma = check_in_range(owner, "gamma", gamma, 0.0, 1.0)
+        gamma = require_in_range(owner, "gamma", gamma, 0.0, 1.0)
         term = _terminal_mask(owner, terminal, n_states)
         probs = _check_probabilities(owner, "P", probs, term, "next state")
         rewards = _as_float_array(owner, "R", R)
@@ -451,7 +451,7 @@ class FiniteMDP:
             )
         p = _as_float_array(owner, "probs", probs)
         _check_shape(owner, "probs", p, nxt.shape, "(S, A, K)")
-        gamma = check_in_range(owner, "gamma", gamma, 0.0, 1.0)
+        gamma = require_in_range(owner, "gamma", gamma, 0.0, 1.0)
         term = _terminal_mask(owner, terminal, n_states)
         p = _check_probabilities(owner, "probs", p, term, "successor slot")
         r = _as_float_array(owner, "rewards", rewards)
@@ -561,7 +561,7 @@ class FiniteMDP:
 
         owner = "FiniteMDP.from_gymnasium"
         table = read_transition_table(env)
-        gamma = check_in_range(owner, "gamma", gamma, 0.0, 1.0)
+        gamma = require_in_range(owner, "gamma", gamma, 0.0, 1.0)
         shape = table.probs.shape[:2]
         masks = _action_masks(owner, _read_action_masks(env, shape), shape, table.terminal)
         return cls._build_sparse(
@@ -761,7 +761,7 @@ class FiniteMDP:
 
     def with_gamma(self, gamma: float) -> FiniteMDP:
         """Return the same model with another discount (arrays are shared, not copied)."""
-        gamma = check_in_range("FiniteMDP.with_gamma", "gamma", gamma, 0.0, 1.0)
+        gamma = require_in_range("FiniteMDP.with_gamma", "gamma", gamma, 0.0, 1.0)
         clone = FiniteMDP.__new__(FiniteMDP)
         clone.__dict__.update(self.__dict__)
         clone._gamma = gamma

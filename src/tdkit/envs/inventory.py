@@ -39,7 +39,7 @@ import gymnasium as gym
 import numpy as np
 
 from .._errors import InvalidParameterError
-from .._validation import check_in_range, check_positive_int, check_real
+from .._validation import require_in_range, require_positive_int, require_real
 from .finite import FiniteMDP
 
 __all__ = ["InventoryEnv"]
@@ -105,25 +105,27 @@ class InventoryEnv(gym.Env):
         max_backlog: int = 20,
         backorder_cost: float = 2.0,
     ) -> None:
-        self.capacity = check_positive_int("InventoryEnv", "capacity", capacity)
-        self.mean_demand = check_in_range(
+        self.capacity = require_positive_int("InventoryEnv", "capacity", capacity)
+        self.mean_demand = require_in_range(
             "InventoryEnv", "mean_demand", mean_demand, 0.0, math.inf, low_open=True
         )
-        self.price = check_real("InventoryEnv", "price", price)
-        self.unit_cost = check_real("InventoryEnv", "unit_cost", unit_cost)
-        self.order_fee = check_real("InventoryEnv", "order_fee", order_fee)
-        self.holding_cost = check_real("InventoryEnv", "holding_cost", holding_cost)
-        self.lost_sale_penalty = check_real("InventoryEnv", "lost_sale_penalty", lost_sale_penalty)
-        self.weeks = check_positive_int("InventoryEnv", "weeks", weeks)
-        self.gamma = check_in_range("InventoryEnv", "gamma", gamma, 0.0, 1.0)
+        self.price = require_real("InventoryEnv", "price", price)
+        self.unit_cost = require_real("InventoryEnv", "unit_cost", unit_cost)
+        self.order_fee = require_real("InventoryEnv", "order_fee", order_fee)
+        self.holding_cost = require_real("InventoryEnv", "holding_cost", holding_cost)
+        self.lost_sale_penalty = require_real(
+            "InventoryEnv", "lost_sale_penalty", lost_sale_penalty
+        )
+        self.weeks = require_positive_int("InventoryEnv", "weeks", weeks)
+        self.gamma = require_in_range("InventoryEnv", "gamma", gamma, 0.0, 1.0)
         if not isinstance(backlog, (bool, np.bool_)):
             raise InvalidParameterError(
                 f"InventoryEnv: backlog must be True (unmet demand waits) or False (it is "
                 f"lost); got {backlog!r}."
             )
         self.backlog = bool(backlog)
-        self.max_backlog = check_positive_int("InventoryEnv", "max_backlog", max_backlog)
-        self.backorder_cost = check_real("InventoryEnv", "backorder_cost", backorder_cost)
+        self.max_backlog = require_positive_int("InventoryEnv", "max_backlog", max_backlog)
+        self.backorder_cost = require_real("InventoryEnv", "backorder_cost", backorder_cost)
         self._lowest = -self.max_backlog if self.backlog else 0
         n = self.capacity - self._lowest + 1
         self.observation_space = gym.spaces.Discrete(n, start=self._lowest)

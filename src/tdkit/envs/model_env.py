@@ -6,9 +6,9 @@ import numbers
 from typing import TYPE_CHECKING, Any
 
 import gymnasium
-import numpy as np
 
 from .._errors import EnvironmentProtocolError, InvalidParameterError
+from ._successors import sample_slot, successor_tables
 
 if TYPE_CHECKING:
     from .finite import FiniteMDP
@@ -56,17 +56,12 @@ class FiniteMDPEnv(gymnasium.Env):
         self._masks = mdp.masks
         self.observation_space = gymnasium.spaces.Discrete(mdp.n_states)
         self.action_space = gymnasium.spaces.Discrete(mdp.n_actions)
-        next_states, probs, rewards = mdp.successors
-        cumulative = np.cumsum(probs, axis=2)
-        # Exactly 1 at the last positive slot (trailing zero slots share the value),
-        # so a uniform draw in [0, 1) never lands on a zero-probability slot.
-        cumulative /= cumulative[:, :, -1:]
-        self._cumulative = cumulative
-        self._next_states = next_states
-        self._rewards = rewards
-        self._terminal = mdp.terminal
-        self._initial_cumulative = np.cumsum(mdp.initial)
-        self._initial_cumulative /= self._initial_cumulative[-1]
+        tables = successor_tables(mdp)  # the one sampling rule of tdkit.envs._successors
+        self._cumulative = tables.cumulative
+        self._next_states = tables.next_states
+        self._rewards = tables.rewards
+        self._terminal = tables.terminal
+        self._initial_cumulative = tables.start_cumulative
         self._n_actions = mdp.n_actions
         self._state: int | None = None
         self._steps = 0
@@ -77,7 +72,7 @@ class FiniteMDPEnv(gymnasium.Env):
         """Start an episode; ``seed`` reseeds ``np_random`` (gymnasium's contract)."""
         super().reset(seed=seed)
         u = self.np_random.random()
-        self._state = int(np.searchsorted(self._initial_cumulative, u, side="right"))
+        self._state = int(sample_slot(self._initial_cumulative, u))
         self._steps = 0
         return self._state, self._info(self._state)
 
@@ -104,10 +99,7 @@ class FiniteMDPEnv(gymnasium.Env):
             )
         if self._terminal[s]:
             return s, 0.0, True, False, self._info(s)
-        row = self._cumulative[s, action]
-        k = int(np.searchsorted(row, self.np_random.random(), side="right"))
-        if k >= row.shape[0]:  # pragma: no cover - only if rounding pushes u past 1
-            k = row.shape[0] - 1
+        k = sample_slot(self._cumulative[s, action], self.np_random.random())
         nxt = int(self._next_states[s, action, k])
         reward = float(self._rewards[s, action, k])
         self._state = nxt

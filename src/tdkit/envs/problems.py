@@ -23,7 +23,7 @@ import numpy as np
 
 from .._errors import InvalidParameterError
 from .._seeding import SeedLike, as_generator
-from .._validation import check_in_range, check_positive_int, check_real
+from .._validation import require_in_range, require_positive_int, require_real
 from .access_control import access_control
 from .finite import FiniteMDP
 
@@ -115,7 +115,7 @@ def _clip_move(row: int, col: int, move: int, shape: tuple[int, int]) -> tuple[i
 
 
 def _gamma(owner: str, gamma: float) -> float:
-    return check_in_range(owner, "gamma", gamma, 0.0, 1.0)
+    return require_in_range(owner, "gamma", gamma, 0.0, 1.0)
 
 
 # ---------------------------------------------------------------- chapter 6/7: random walk
@@ -151,9 +151,9 @@ def random_walk(
     array([1., 2., 3., 4., 5.])
     """
     owner = "random_walk"
-    n = check_positive_int(owner, "n_states", n_states)
-    left = check_real(owner, "left_reward", left_reward)
-    right = check_real(owner, "right_reward", right_reward)
+    n = require_positive_int(owner, "n_states", n_states)
+    left = require_real(owner, "left_reward", left_reward)
+    right = require_real(owner, "right_reward", right_reward)
     size = n + 2
     terminal = np.zeros(size, dtype=bool)
     terminal[[0, size - 1]] = True
@@ -356,9 +356,9 @@ def maximization_bias(
     prefers "left"; the optimal policy takes "right", value 0 at A).
     """
     owner = "maximization_bias"
-    n_b = check_positive_int(owner, "n_b_actions", n_b_actions)
-    mean = check_real(owner, "mean", mean)
-    std = check_in_range(owner, "std", std, 0.0, math.inf)
+    n_b = require_positive_int(owner, "n_b_actions", n_b_actions)
+    mean = require_real(owner, "mean", mean)
+    std = require_in_range(owner, "std", std, 0.0, math.inf)
     n_actions = max(2, n_b)
 
     def outcomes(s: int, a: int) -> list[Successor]:
@@ -377,7 +377,7 @@ def maximization_bias_mask(n_b_actions: int = 10) -> np.ndarray:
 
     State A has its two actions (left, right), state B all ``n_b_actions``.
     """
-    n_b = check_positive_int("maximization_bias_mask", "n_b_actions", n_b_actions)
+    n_b = require_positive_int("maximization_bias_mask", "n_b_actions", n_b_actions)
     mask = np.zeros((3, max(2, n_b)), dtype=bool)
     mask[0, :2] = True
     mask[1, :n_b] = True
@@ -406,8 +406,8 @@ def gamblers_problem(
     is optimal.
     """
     owner = "gamblers_problem"
-    p = check_in_range(owner, "p_heads", p_heads, 0.0, 1.0)
-    goal = check_positive_int(owner, "goal", goal, minimum=2)
+    p = require_in_range(owner, "p_heads", p_heads, 0.0, 1.0)
+    goal = require_positive_int(owner, "goal", goal, minimum=2)
     size = goal + 1
     terminal = np.zeros(size, dtype=bool)
     terminal[[0, goal]] = True
@@ -585,9 +585,9 @@ def garnet(
     (50, 3, 4)
     """
     owner = "garnet"
-    n = check_positive_int(owner, "n_states", n_states)
-    m = check_positive_int(owner, "n_actions", n_actions)
-    k = check_positive_int(owner, "branching", branching)
+    n = require_positive_int(owner, "n_states", n_states)
+    m = require_positive_int(owner, "n_actions", n_actions)
+    k = require_positive_int(owner, "branching", branching)
     if k > n:
         raise InvalidParameterError(
             f"{owner}: branching must be <= n_states = {n} (successors are distinct); "

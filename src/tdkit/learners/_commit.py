@@ -23,8 +23,6 @@ from typing import Any
 
 import numpy as np
 
-from .._greedy import check_mask
-
 __all__ = ["CommitsNextAction"]
 
 
@@ -45,7 +43,7 @@ class CommitsNextAction:
         """Choose an action; with ``explore=True`` return the committed one when it applies."""
         s = self._encode(obs)  # type: ignore[attr-defined]
         if mask is not None:
-            mask = check_mask(mask, self.n_actions)  # type: ignore[attr-defined]
+            mask = self._sets.get(mask).mask  # type: ignore[attr-defined]
         if not explore:
             return self._env_action(self._choose(s, mask, False))  # type: ignore[attr-defined]
         committed = self._committed

@@ -1,4 +1,4 @@
-r"""Sparse eligibility traces: the one place a trace step is written.
+r"""Sparse eligibility traces: the one place a trace step is written, and the trace learners' base.
 
 Traces live in a dict ``{flat index: e}`` holding only the active entries,
 so one step costs :math:`O(\text{active traces})`, not :math:`O(|S||A|)`.
@@ -21,11 +21,19 @@ References
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 
 from .._errors import InvalidParameterError
+from .._seeding import SeedLike
+from .._validation import require_in_range
+from ..agent import TabularAgent, Transition
+from ..exploration import Exploration
+from ..schedules import Schedule
+from ..tables import InitialValue
 
-__all__ = ["TRACE_KINDS", "check_trace", "trace_step"]
+__all__ = ["TRACE_KINDS", "TraceLearner", "check_trace", "trace_step"]
 
 #: The trace kinds every trace learner accepts.
 TRACE_KINDS = ("accumulating", "replacing", "dutch")
@@ -113,3 +121,111 @@ def trace_step(
         del traces[j]
     if correction != 0.0:
         values[k] -= alpha * correction
+
+
+class TraceLearner(TabularAgent):
+    """Trace bookkeeping shared by the trace learners (control and prediction).
+
+    Subclasses provide :meth:`_next_value` (the bootstrap value) and may
+    override :meth:`_before_step` and :meth:`_column`; the TD error and the
+    trace step are computed here, once.
+    """
+
+    def __init__(
+        self,
+        n_states: int,
+        n_actions: int,
+        *,
+        lam: float = 0.9,
+        trace: str = "accumulating",
+        trace_cutoff: float = 1e-8,
+        gamma: float = 0.99,
+        step_size: float | Schedule = 0.1,
+        exploration: float | Schedule | Exploration = 0.1,
+        initial_value: InitialValue = 0.0,
+        seed: SeedLike = None,
+        state_encoder: Any = None,
+        action_encoder: Any = None,
+    ) -> None:
+        self._check_trace_params(lam, trace, trace_cutoff)
+        super().__init__(
+            n_states, n_actions, gamma=gamma, step_size=step_size, exploration=exploration,
+            initial_value=initial_value, seed=seed, state_encoder=state_encoder,
+            action_encoder=action_encoder,
+        )
+        self._start_traces()
+
+    def _check_trace_params(self, lam: float, trace: str, trace_cutoff: float) -> None:
+        name = type(self).__name__
+        self.lam = require_in_range(name, "lam", lam, 0.0, 1.0)
+        self.trace = check_trace(name, trace)
+        self.trace_cutoff = require_in_range(
+            name, "trace_cutoff", trace_cutoff, 0.0, 1.0, high_open=True,
+            hint="Use 0 to keep every nonzero trace (exact), or a small value like 1e-8.",
+        )
+
+    def _start_traces(self) -> None:
+        """Set up the (empty) traces; the tables must exist."""
+        self._flat = self._q.reshape(-1)
+        if not np.shares_memory(self._flat, self._q):  # pragma: no cover - tables are contiguous
+            raise RuntimeError(f"{type(self).__name__}: the value table must be C-contiguous.")
+        self._traces: dict[int, float] = {}
+        self._q_old = 0.0  # true online: the value of this step's pair as estimated last step
+        self._expect: int | None = None  # where the next transition should start
+        self._mask_now: np.ndarray | None = None  # mask of that state, if known
+
+    # -------------------------------------------------------------- hooks
+    def _column(self, a: int) -> int:
+        """Table column of action ``a`` (prediction learners have one column)."""
+        return a
+
+    def _next_value(
+        self, s2: int, next_mask: np.ndarray | None, terminated: bool, truncated: bool
+    ) -> float:
+        """The bootstrap value of ``s2`` (ignored when ``terminated``)."""
+        raise NotImplementedError
+
+    def _before_step(self, s: int, a: int) -> None:
+        """Called before the trace of ``(s, a)`` is bumped."""
+
+    # -------------------------------------------------------------- machinery
+    def _reset_traces(self) -> None:
+        self._traces.clear()
+        self._q_old = 0.0
+        self._expect = None
+        self._mask_now = None
+
+    def _learn(self, transition: Transition) -> tuple[float, ...]:
+        s, a, r, s2, terminated, truncated, next_mask = transition
+        if self._expect is not None and s != self._expect:
+            self._reset_traces()
+        self._before_step(s, a)
+        q_next = self._next_value(s2, next_mask, terminated, truncated)
+        col = self._column(a)
+        alpha = self._count_visit(self._visits, s, col)
+        k = s * self._width + col
+        q_sa = float(self._flat[k])
+        target = r if terminated else r + self.gamma * q_next
+        delta = target - q_sa
+        dutch = self.trace == "dutch"
+        trace_step(
+            self._flat, self._traces, k, delta, alpha, self.gamma * self.lam, self.trace,
+            self.trace_cutoff, (q_sa - self._q_old) if dutch else 0.0,
+        )
+        if terminated or truncated:
+            self._reset_traces()
+        else:
+            self._q_old = q_next
+            self._expect = s2
+            self._mask_now = next_mask
+        return (delta,)
+
+    def _end_episode(self) -> None:
+        self._reset_traces()
+        super()._end_episode()
+
+    @property
+    def traces(self) -> dict[tuple[int, int], float]:
+        """The active eligibility traces ``{(state, column): e}`` (a copy)."""
+        width = self._width
+        return {divmod(k, width): e for k, e in self._traces.items()}  # type: ignore[misc]

@@ -55,20 +55,20 @@ Sutton, R. S. & Barto, A. G. (2018). Reinforcement Learning: An Introduction,
 
 from __future__ import annotations
 
-from typing import Any, ClassVar
+from typing import Any
 
 import numpy as np
 
 from .._errors import InvalidParameterError
 from .._greedy import check_mask, masked_max
 from .._seeding import SeedLike
-from .._validation import check_real
+from .._validation import require_real
 from ..agent import TabularAgent, Transition
 from ..exploration import Exploration
 from ..schedules import Schedule
 from ..tables import InitialValue
 from ._commit import CommitsNextAction
-from .prediction import _POLICY_DOC, _PolicyLearner
+from .prediction import _PolicyLearner
 
 __all__ = ["DifferentialQLearning", "DifferentialSarsa", "DifferentialTD"]
 
@@ -83,15 +83,13 @@ class _AverageReward:
     base constructor and implement :meth:`_restart_value`.
     """
 
-    _extra_params: ClassVar[tuple[str, ...]] = ("reward_step_size", "initial_average_reward")
-
     #: (state, action, reward) of a terminating transition whose bootstrap waits for the
     #: next episode's start state, or None.
     _restart: tuple[int, int, float] | None = None
 
     def _init_average(self, reward_step_size: float, initial_average_reward: float) -> None:
         name = type(self).__name__
-        eta = check_real(name, "reward_step_size", reward_step_size)
+        eta = require_real(name, "reward_step_size", reward_step_size)
         if eta <= 0.0:
             raise InvalidParameterError(
                 f"{name}: reward_step_size must be > 0 (it is eta, the average reward's step "
@@ -101,7 +99,7 @@ class _AverageReward:
         self.reward_step_size = reward_step_size
         self.initial_average_reward = initial_average_reward
         self._eta = eta
-        self.average_reward = check_real(name, "initial_average_reward", initial_average_reward)
+        self.average_reward = require_real(name, "initial_average_reward", initial_average_reward)
         self._restart = None
 
     @classmethod
@@ -133,18 +131,6 @@ class _AverageReward:
                     )
                 kwargs[key] = make(space)
         return cls(kwargs["state_encoder"].n_states, kwargs["action_encoder"].n_actions, **kwargs)
-
-    def get_params(self) -> dict[str, Any]:
-        """Constructor arguments, as given (no ``gamma``: there is no discount)."""
-        params = super().get_params()  # type: ignore[misc]
-        del params["gamma"]
-        return params
-
-    def __repr__(self) -> str:
-        params = self.get_params()
-        order = ("n_states", "n_actions", "step_size", "exploration", *self._extra_params)
-        shown = [k for k in dict.fromkeys(order) if k in params]
-        return f"{type(self).__name__}({', '.join(f'{k}={params[k]!r}' for k in shown)})"
 
     # ------------------------------------------------------------ the rule
     def _differential_step(self, s: int, a: int, target: float) -> float:
@@ -364,7 +350,7 @@ class DifferentialSarsa(_AverageReward, CommitsNextAction, TabularAgent):
 
 
 class DifferentialTD(_AverageReward, _PolicyLearner):
-    __doc__ = r"""Differential TD(0): the differential values and the gain of a given policy.
+    r"""Differential TD(0): the differential values and the gain of a given policy.
 
     .. math::
         \delta_t = R_{t+1} - \bar R_t + V(S_{t+1}) - V(S_t), \quad
@@ -377,11 +363,20 @@ class DifferentialTD(_AverageReward, _PolicyLearner):
     given policy, as :class:`tdkit.TD0` does. ``truncated`` bootstraps;
     ``terminated`` restarts the task and bootstraps from :math:`V(S_0)` of the
     next episode's start state.
-    """ + _POLICY_DOC.replace(
-        """    gamma : float, default 0.99
-        Discount factor in [0, 1].
-""", ""
-    ) + r"""
+
+    Parameters
+    ----------
+    n_states, n_actions : int
+        Table shape (states; actions of the policy).
+    policy : array_like of shape (n_states, n_actions), or callable
+        Action probabilities per state (rows sum to 1), or ``obs -> action``.
+    step_size : float or Schedule, default 0.1
+        :math:`\alpha \in (0, 1]` or a schedule (e.g. ``VisitCount(1.0)``).
+    initial_value : float or (float, float), default 0.0
+    seed : int, Generator or None
+        Seeds the draws of actions from a policy table.
+    state_encoder, action_encoder : optional
+        See :mod:`tdkit.encoders`.
     reward_step_size : float, default 0.1
         :math:`\eta > 0`: the average reward moves by :math:`\eta\alpha\delta`.
     initial_average_reward : float, default 0.0
@@ -406,10 +401,6 @@ class DifferentialTD(_AverageReward, _PolicyLearner):
     >>> agent.values(0), agent.average_reward
     (0.5, 0.5)
     """
-
-    _extra_params: ClassVar[tuple[str, ...]] = (
-        "policy", "reward_step_size", "initial_average_reward",
-    )
 
     def __init__(
         self,

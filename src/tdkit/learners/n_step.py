@@ -29,15 +29,21 @@ References
 from __future__ import annotations
 
 from collections import deque
-from typing import Any, ClassVar
+from collections.abc import Sequence
+from typing import Any
 
 import numpy as np
 
 from .._errors import InvalidParameterError
 from .._greedy import masked_max
-from .._validation import check_positive_int
+from .._seeding import SeedLike
+from .._validation import require_positive_int
 from ..agent import TabularAgent, Transition
+from ..exploration import Exploration
+from ..schedules import Schedule
+from ..tables import InitialValue
 from ._commit import CommitsNextAction
+from ._targets import greedy_max, sampled_value
 
 __all__ = ["NStepSarsa", "TreeBackup"]
 
@@ -50,11 +56,26 @@ _Tail = tuple[int, "np.ndarray | None", "int | None"]
 class _NStepLearner(TabularAgent):
     """Buffering, completion and flushing shared by the n-step learners."""
 
-    _extra_params: ClassVar[tuple[str, ...]] = ("n",)
-
-    def __init__(self, n_states: int, n_actions: int, *, n: int = 4, **kwargs: Any) -> None:
-        self.n = check_positive_int(type(self).__name__, "n", n)
-        super().__init__(n_states, n_actions, **kwargs)
+    def __init__(
+        self,
+        n_states: int,
+        n_actions: int,
+        *,
+        n: int = 4,
+        gamma: float = 0.99,
+        step_size: float | Schedule = 0.1,
+        exploration: float | Schedule | Exploration = 0.1,
+        initial_value: InitialValue = 0.0,
+        seed: SeedLike = None,
+        state_encoder: Any = None,
+        action_encoder: Any = None,
+    ) -> None:
+        self.n = require_positive_int(type(self).__name__, "n", n)
+        super().__init__(
+            n_states, n_actions, gamma=gamma, step_size=step_size, exploration=exploration,
+            initial_value=initial_value, seed=seed, state_encoder=state_encoder,
+            action_encoder=action_encoder,
+        )
         self._buffer: deque[_Step] = deque()
         self._mask_now: np.ndarray | None = None  # mask of S_t (next_mask of the previous step)
         self._tail: _Tail | None = None  # bootstrap data of the last step of this episode
@@ -177,18 +198,31 @@ class NStepSarsa(CommitsNextAction, _NStepLearner):
     (3.0, 2.0, 1.0)
     """
 
-    _extra_params: ClassVar[tuple[str, ...]] = ("n", "off_policy")
-
     def __init__(
-        self, n_states: int, n_actions: int, *, n: int = 4, off_policy: bool = False,
-        **kwargs: Any,
+        self,
+        n_states: int,
+        n_actions: int,
+        *,
+        n: int = 4,
+        off_policy: bool = False,
+        gamma: float = 0.99,
+        step_size: float | Schedule = 0.1,
+        exploration: float | Schedule | Exploration = 0.1,
+        initial_value: InitialValue = 0.0,
+        seed: SeedLike = None,
+        state_encoder: Any = None,
+        action_encoder: Any = None,
     ) -> None:
         if not isinstance(off_policy, (bool, np.bool_)):
             raise InvalidParameterError(
                 f"NStepSarsa: off_policy must be True or False; got {off_policy!r}."
             )
         self.off_policy = bool(off_policy)
-        super().__init__(n_states, n_actions, n=n, **kwargs)
+        super().__init__(
+            n_states, n_actions, n=n, gamma=gamma, step_size=step_size, exploration=exploration,
+            initial_value=initial_value, seed=seed, state_encoder=state_encoder,
+            action_encoder=action_encoder,
+        )
 
     def _bootstrap_action(
         self, s2: int, next_mask: np.ndarray | None, terminated: bool, truncated: bool
@@ -229,7 +263,7 @@ class NStepSarsa(CommitsNextAction, _NStepLearner):
             s, a = steps[j][0], steps[j][1]
             g = suffix[j]
             if not terminated:
-                g += gamma ** (length - j) * q[s2, a2]
+                g += gamma ** (length - j) * sampled_value(self._row(s2), a2)
             if not self.off_policy:
                 errors.append(self._td_step(q, self._visits, s, a, g))
                 continue
@@ -244,7 +278,7 @@ class NStepSarsa(CommitsNextAction, _NStepLearner):
             if rho == 0.0:
                 errors.append(0.0)
                 continue
-            errors.append(self._td_step(q, self._visits, s, a, q[s, a] + rho * (g - q[s, a])))
+            errors.append(self._td_step(q, self._visits, s, a, g, rho))
         return errors
 
 
@@ -306,23 +340,22 @@ class TreeBackup(_NStepLearner):
             # Recomputed for each flushed step: earlier updates may have changed Q(S_k, .).
             g = steps[-1][2]
             if not terminated:
-                g += gamma * masked_max(q[s2], mask2)
+                g += gamma * greedy_max(self._row(s2), self._allowed(mask2))
             for k in range(length - 1, j, -1):
                 sk, ak, _, mk = steps[k]
-                g = steps[k - 1][2] + gamma * _greedy_backup(q[sk], mk, ak, g)
+                g = steps[k - 1][2] + gamma * _greedy_backup(
+                    self._row(sk), self._allowed(mk), ak, g
+                )
             errors.append(self._td_step(q, self._visits, steps[j][0], steps[j][1], g))
         return errors
 
 
-def _greedy_backup(row: np.ndarray, mask: np.ndarray | None, taken: int, g: float) -> float:
+def _greedy_backup(row: Sequence[float], allowed: Sequence[int], taken: int, g: float) -> float:
     r""":math:`\sum_{a \ne A} \pi(a)\,Q(a) + \pi(A)\,G` for the greedy :math:`\pi` (ties share)."""
-    top = masked_max(row, mask)
+    top = greedy_max(row, allowed)
     if row[taken] < top:
         return top
-    ties = row == top
-    if mask is not None:
-        ties &= mask
-    k = int(ties.sum())
+    k = sum(1 for a in allowed if row[a] == top)
     if k == 1:
         return g
     return ((k - 1) * top + g) / k

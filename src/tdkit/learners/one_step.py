@@ -15,10 +15,12 @@ from typing import Any
 
 import numpy as np
 
-from .._greedy import greedy_action, masked_max
+from .._greedy import greedy_action, row_max
 from ..agent import TabularAgent, Transition
+from ..exploration import EpsilonGreedy, Softmax
 from ..tables import ActionValueTable, InitialValue, read_only
 from ._commit import CommitsNextAction
+from ._targets import expected_epsilon_greedy, expected_softmax
 
 __all__ = ["DoubleQLearning", "ExpectedSarsa", "QLearning", "Sarsa"]
 
@@ -78,8 +80,19 @@ class QLearning(TabularAgent):
 
     def _learn(self, transition: Transition) -> tuple[float, ...]:
         s, a, r, s2, terminated, _truncated, next_mask = transition
-        target = r if terminated else r + self.gamma * masked_max(self._q[s2], next_mask)
+        if terminated:
+            target = r
+        else:
+            row = self._unpack_row(self._qbytes, s2 * self._row_bytes)
+            if next_mask is None:
+                target = r + self.gamma * max(row)
+            else:
+                target = r + self.gamma * row_max(row, self._sets.of(next_mask))
         return (self._td_step(self._q, self._visits, s, a, target),)
+
+    #: Q-learning's update under a name subclasses keep when they override ``_learn``
+    #: (the planning learners apply it to real and simulated transitions alike).
+    _q_learning_step = _learn
 
 
 class Sarsa(CommitsNextAction, TabularAgent):
@@ -129,7 +142,8 @@ class Sarsa(CommitsNextAction, TabularAgent):
             self._drop_next_action()
             target = r
         else:
-            target = r + self.gamma * self._q[s2, self._next_action(s2, next_mask, truncated)]
+            a2 = self._next_action(s2, next_mask, truncated)
+            target = r + self.gamma * self._qv[s2 * self._width + a2]
         return (self._td_step(self._q, self._visits, s, a, target),)
 
 
@@ -168,13 +182,29 @@ class ExpectedSarsa(TabularAgent):
 
     def _learn(self, transition: Transition) -> tuple[float, ...]:
         s, a, r, s2, terminated, _truncated, next_mask = transition
-        if terminated:
-            target = r
-        else:
-            target = r + self.gamma * self._explore.expected_value(
-                self._q[s2], next_mask, step=self.steps_, counts=self._counts_for(s2)
-            )
+        target = r if terminated else r + self.gamma * self._expected_value(s2, next_mask)
         return (self._td_step(self._q, self._visits, s, a, target),)
+
+    def _expected_value(self, s2: int, next_mask: np.ndarray | None) -> float:
+        r""":math:`\sum_a \pi(a \mid s_2)\, Q(s_2, a)` under the exploration rule now.
+
+        ε-greedy and soft-max use the closed forms of
+        :mod:`tdkit.learners._targets` (shared with :func:`tdkit.train_batch`);
+        other rules their own ``expected_value``.
+        """
+        rule = self._explore
+        kind = type(rule)
+        if kind is EpsilonGreedy:
+            return expected_epsilon_greedy(
+                self._row(s2), self._allowed(next_mask), rule.current(self.steps_)
+            )
+        if kind is Softmax:
+            return expected_softmax(
+                self._row(s2), self._allowed(next_mask), rule.temperature.value(self.steps_)
+            )
+        return rule.expected_value(
+            self._q[s2], next_mask, step=self.steps_, counts=self._counts_for(s2)
+        )
 
 
 class DoubleQLearning(TabularAgent):

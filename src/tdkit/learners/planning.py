@@ -23,16 +23,20 @@ from the learner's own generator, so a seed reproduces a run.
 from __future__ import annotations
 
 import heapq
-import itertools
 import math
 from typing import Any, ClassVar
 
 import numpy as np
 
-from .._greedy import masked_max, uniform_action
-from .._validation import check_in_range, check_positive_int
+from .._greedy import uniform_action
+from .._seeding import SeedLike
+from .._validation import require_in_range, require_positive_int
 from ..agent import Transition
+from ..exploration import Exploration
+from ..schedules import Schedule
+from ..tables import InitialValue
 from ._models import make_model
+from ._targets import greedy_max
 from .one_step import QLearning
 
 __all__ = ["DynaQ", "DynaQPlus", "PrioritizedSweeping"]
@@ -41,8 +45,6 @@ __all__ = ["DynaQ", "DynaQPlus", "PrioritizedSweeping"]
 class _PlanningLearner(QLearning):
     """Direct Q-learning, a learned model, and a planning hook."""
 
-    _extra_params: ClassVar[tuple[str, ...]] = ("planning_steps", "model")
-
     def __init__(
         self,
         n_states: int,
@@ -50,18 +52,30 @@ class _PlanningLearner(QLearning):
         *,
         planning_steps: int = 5,
         model: str = "last",
-        **kwargs: Any,
+        gamma: float = 0.99,
+        step_size: float | Schedule = 0.1,
+        exploration: float | Schedule | Exploration = 0.1,
+        initial_value: InitialValue = 0.0,
+        seed: SeedLike = None,
+        state_encoder: Any = None,
+        action_encoder: Any = None,
     ) -> None:
         name = type(self).__name__
-        self.planning_steps = check_positive_int(name, "planning_steps", planning_steps, minimum=0)
+        self.planning_steps = require_positive_int(
+            name, "planning_steps", planning_steps, minimum=0
+        )
         self._model = make_model(name, model)
         self.model = model
-        super().__init__(n_states, n_actions, **kwargs)
+        super().__init__(
+            n_states, n_actions, gamma=gamma, step_size=step_size, exploration=exploration,
+            initial_value=initial_value, seed=seed, state_encoder=state_encoder,
+            action_encoder=action_encoder,
+        )
         #: Number of simulated (planning) updates applied so far.
         self.planning_updates_ = 0
 
     def _learn(self, transition: Transition) -> tuple[float, ...]:
-        errors = super()._learn(transition)  # direct RL: Q-learning on the real transition
+        errors = self._q_learning_step(transition)  # direct RL on the real transition
         s, a, r, s2, terminated, _truncated, next_mask = transition
         self._model.record(s, a, r, s2, terminated, next_mask)
         self._after_real_step(s, a, s2, next_mask)
@@ -90,7 +104,15 @@ class _PlanningLearner(QLearning):
         return int(self._visits.sum())
 
 
-_PLANNING_DOC = r"""
+class DynaQ(_PlanningLearner):
+    r"""Tabular Dyna-Q: Q-learning plus planning from a learned model.
+
+    After the real update and the model update, repeat ``planning_steps``
+    times: pick a previously observed state uniformly, then an action
+    previously taken there uniformly, ask the model for an outcome (with
+    ``model="counts"``, drawn with probability proportional to its count) and
+    apply the Q-learning update to it.
+
     Parameters
     ----------
     n_states, n_actions, gamma, step_size, exploration, initial_value, seed
@@ -100,18 +122,7 @@ _PLANNING_DOC = r"""
         Simulated updates after each real step, ``>= 0``.
     model : {"last", "counts"}, default "last"
         Deterministic last-outcome model, or outcome counts with mean
-        rewards for stochastic environments."""
-
-
-class DynaQ(_PlanningLearner):
-    __doc__ = r"""Tabular Dyna-Q: Q-learning plus planning from a learned model.
-
-    After the real update and the model update, repeat ``planning_steps``
-    times: pick a previously observed state uniformly, then an action
-    previously taken there uniformly, ask the model for an outcome (with
-    ``model="counts"``, drawn with probability proportional to its count) and
-    apply the Q-learning update to it.
-    """ + _PLANNING_DOC + r"""
+        rewards for stochastic environments.
 
     Attributes
     ----------
@@ -144,16 +155,16 @@ class DynaQ(_PlanningLearner):
     def _plan(self) -> None:
         model = self._model
         rng = self._rng
-        learn = QLearning._learn
+        learn = self._q_learning_step
         for _ in range(self.planning_steps):
             s, a = model.sample_pair(rng)
             r, s2, terminated, mask = model.sample(s, a, rng)
-            learn(self, (s, a, r, s2, terminated, False, mask))
+            learn(Transition(s, a, r, s2, terminated, False, mask))
         self.planning_updates_ += self.planning_steps
 
 
 class DynaQPlus(DynaQ):
-    __doc__ = r"""Dyna-Q+: Dyna-Q with an exploration bonus for pairs not tried for a long time.
+    r"""Dyna-Q+: Dyna-Q with an exploration bonus for pairs not tried for a long time.
 
     Planning updates use the modelled reward plus :math:`\kappa\sqrt{\tau}`,
     where :math:`\tau` is the number of real steps since the pair was last
@@ -161,7 +172,17 @@ class DynaQPlus(DynaQ):
     tried from an observed state; their model returns to the same state with
     reward 0 (only actions allowed by the last mask seen for that state, if
     any). Real updates carry no bonus.
-    """ + _PLANNING_DOC + r"""
+
+    Parameters
+    ----------
+    n_states, n_actions, gamma, step_size, exploration, initial_value, seed
+        As for :class:`~tdkit.QLearning`; so are ``state_encoder`` and
+        ``action_encoder``.
+    planning_steps : int, default 5
+        Simulated updates after each real step, ``>= 0``.
+    model : {"last", "counts"}, default "last"
+        Deterministic last-outcome model, or outcome counts with mean
+        rewards for stochastic environments.
     kappa : float, default 1e-3
         Bonus weight :math:`\kappa \ge 0` (``0`` gives Dyna-Q's updates,
         with untried actions also planned).
@@ -186,8 +207,6 @@ class DynaQPlus(DynaQ):
     0.1
     """
 
-    _extra_params: ClassVar[tuple[str, ...]] = ("planning_steps", "kappa", "model")
-
     def __init__(
         self,
         n_states: int,
@@ -196,17 +215,26 @@ class DynaQPlus(DynaQ):
         planning_steps: int = 5,
         kappa: float = 1e-3,
         model: str = "last",
-        **kwargs: Any,
+        gamma: float = 0.99,
+        step_size: float | Schedule = 0.1,
+        exploration: float | Schedule | Exploration = 0.1,
+        initial_value: InitialValue = 0.0,
+        seed: SeedLike = None,
+        state_encoder: Any = None,
+        action_encoder: Any = None,
     ) -> None:
-        self.kappa = check_in_range(type(self).__name__, "kappa", kappa, 0.0, math.inf)
+        self.kappa = require_in_range(type(self).__name__, "kappa", kappa, 0.0, math.inf)
         super().__init__(
-            n_states, n_actions, planning_steps=planning_steps, model=model, **kwargs
+            n_states, n_actions, planning_steps=planning_steps, model=model,
+            gamma=gamma, step_size=step_size, exploration=exploration,
+            initial_value=initial_value, seed=seed, state_encoder=state_encoder,
+            action_encoder=action_encoder,
         )
         self._last_tried = np.zeros((self.n_states, self.n_actions), dtype=np.int64)
         self._known_masks: dict[int, np.ndarray] = {}
 
     def _choose(self, s: int, mask: np.ndarray | None, explore: bool) -> int:
-        if mask is not None:
+        if explore and mask is not None:  # behaviour only: greedy act leaves the model alone
             self._known_masks[s] = mask
         return super()._choose(s, mask, explore)
 
@@ -218,7 +246,7 @@ class DynaQPlus(DynaQ):
     def _plan(self) -> None:
         model = self._model
         rng = self._rng
-        learn = QLearning._learn
+        learn = self._q_learning_step
         kappa = self.kappa
         now = self.steps_
         last = self._last_tried
@@ -231,12 +259,12 @@ class DynaQPlus(DynaQ):
             else:  # never tried: the model returns to s with reward 0
                 r, s2, terminated, next_mask = 0.0, s, False, mask
             r += kappa * math.sqrt(now - last[s, a])
-            learn(self, (s, a, r, s2, terminated, False, next_mask))
+            learn(Transition(s, a, r, s2, terminated, False, next_mask))
         self.planning_updates_ += self.planning_steps
 
 
 class PrioritizedSweeping(_PlanningLearner):
-    __doc__ = r"""Prioritized sweeping: plan backwards from the pairs whose values changed most.
+    r"""Prioritized sweeping: plan backwards from the pairs whose values changed most.
 
     After the real update of :math:`(S, A)`, the pair itself (its model just
     changed) and every pair :math:`(\bar S, \bar A)` the model predicts to
@@ -251,7 +279,17 @@ class PrioritizedSweeping(_PlanningLearner):
     (the book's suggestion for stochastic environments); with ``"last"`` it is
     the sample update of the last outcome. Equal priorities are served first
     in, first out.
-    """ + _PLANNING_DOC + r"""
+
+    Parameters
+    ----------
+    n_states, n_actions, gamma, step_size, exploration, initial_value, seed
+        As for :class:`~tdkit.QLearning`; so are ``state_encoder`` and
+        ``action_encoder``.
+    planning_steps : int, default 5
+        Simulated updates after each real step, ``>= 0``.
+    model : {"last", "counts"}, default "last"
+        Deterministic last-outcome model, or outcome counts with mean
+        rewards for stochastic environments.
     threshold : float, default 1e-4
         Smallest priority that enters the queue, ``>= 0``.
 
@@ -285,8 +323,6 @@ class PrioritizedSweeping(_PlanningLearner):
     ([0.5, 1.0, 0.0], 1)
     """
 
-    _extra_params: ClassVar[tuple[str, ...]] = ("planning_steps", "threshold", "model")
-
     def __init__(
         self,
         n_states: int,
@@ -295,24 +331,35 @@ class PrioritizedSweeping(_PlanningLearner):
         planning_steps: int = 5,
         threshold: float = 1e-4,
         model: str = "last",
-        **kwargs: Any,
+        gamma: float = 0.99,
+        step_size: float | Schedule = 0.1,
+        exploration: float | Schedule | Exploration = 0.1,
+        initial_value: InitialValue = 0.0,
+        seed: SeedLike = None,
+        state_encoder: Any = None,
+        action_encoder: Any = None,
     ) -> None:
-        self.threshold = check_in_range(
+        self.threshold = require_in_range(
             type(self).__name__, "threshold", threshold, 0.0, math.inf
         )
         super().__init__(
-            n_states, n_actions, planning_steps=planning_steps, model=model, **kwargs
+            n_states, n_actions, planning_steps=planning_steps, model=model,
+            gamma=gamma, step_size=step_size, exploration=exploration,
+            initial_value=initial_value, seed=seed, state_encoder=state_encoder,
+            action_encoder=action_encoder,
         )
         self._heap: list[tuple[float, int, int, int]] = []
         self._queued: dict[tuple[int, int], float] = {}
-        self._order = itertools.count()
+        self._pushes = 0  # entries pushed so far: the first-in-first-out tie-breaker
 
     def _model_target(self, s: int, a: int) -> float:
-        q = self._q
         gamma = self.gamma
         target = 0.0
         for p, r, s2, terminated, mask in self._model.outcomes(s, a):
-            target += p * (r if terminated else r + gamma * masked_max(q[s2], mask))
+            if terminated:
+                target += p * r
+            else:
+                target += p * (r + gamma * greedy_max(self._row(s2), self._allowed(mask)))
         return target
 
     def _queue(self, pair: tuple[int, int]) -> None:
@@ -320,7 +367,8 @@ class PrioritizedSweeping(_PlanningLearner):
         priority = abs(self._model_target(*pair) - self._q[pair])
         if priority > self.threshold and priority > self._queued.get(pair, 0.0):
             self._queued[pair] = priority
-            heapq.heappush(self._heap, (-priority, next(self._order), *pair))
+            heapq.heappush(self._heap, (-priority, self._pushes, *pair))
+            self._pushes += 1
 
     def _queue_predecessors(self, s: int) -> None:
         for pair in self._model.predecessors_of(s):
@@ -353,16 +401,14 @@ class PrioritizedSweeping(_PlanningLearner):
             self.planning_updates_ += 1
             self._queue_predecessors(s)
 
-    _extra_state_attributes: ClassVar[tuple[str, ...]] = ("_model", "_heap", "_queued", "_order")
+    _extra_state_attributes: ClassVar[tuple[str, ...]] = ("_model", "_heap", "_queued", "_pushes")
 
     def _get_extra_state(self) -> dict[str, Any]:
-        order = next(self._order)  # reading the counter consumes one number ...
-        self._order = itertools.count(order)  # ... so start a fresh counter there
         return {
             **super()._get_extra_state(),
             "heap": [list(entry) for entry in self._heap],
             "queued": [[s, a, p] for (s, a), p in self._queued.items()],
-            "order": order,
+            "order": self._pushes,
         }
 
     def _set_extra_state(self, state: dict[str, Any]) -> None:
@@ -370,7 +416,7 @@ class PrioritizedSweeping(_PlanningLearner):
         self._heap = [(float(p), int(k), int(s), int(a)) for p, k, s, a in state["heap"]]
         heapq.heapify(self._heap)
         self._queued = {(int(s), int(a)): float(p) for s, a, p in state["queued"]}
-        self._order = itertools.count(int(state["order"]))
+        self._pushes = int(state["order"])
 
     @property
     def queue_size(self) -> int:

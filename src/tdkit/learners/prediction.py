@@ -22,17 +22,19 @@ unchanged; :attr:`values_table` (alias :attr:`v`, and :attr:`table`) is its
 from __future__ import annotations
 
 import math
+import warnings
 from collections.abc import Callable, Iterable, Sequence
 from typing import Any, ClassVar
 
 import numpy as np
 
 from .._errors import InvalidParameterError
-from .._greedy import check_mask
-from .._validation import check_in_range, check_positive_int
+from .._seeding import SeedLike
+from .._validation import require_in_range, require_positive_int
 from ..agent import TabularAgent, Transition
+from ..schedules import Schedule
 from ..tables import InitialValue, initial_values, read_only
-from .traces import _TRACE_PARAMS_DOC, _TraceLearner
+from ._traces_math import TraceLearner
 
 __all__ = ["TD0", "TDLambda"]
 
@@ -43,7 +45,10 @@ _ROW_ATOL = 1e-8
 class _PolicyLearner(TabularAgent):
     """Acting with a given policy and a state-value table (shared by TD0 and TDLambda)."""
 
-    _extra_params: ClassVar[tuple[str, ...]] = ("policy",)
+    _keyword_hints: ClassVar[dict[str, str]] = {
+        "exploration": "prediction learners do not explore: they act with the given policy "
+        "(pass policy=..., an (n_states, n_actions) probability table or a callable).",
+    }
 
     def __init__(
         self,
@@ -52,18 +57,20 @@ class _PolicyLearner(TabularAgent):
         *,
         policy: Any,
         gamma: float = 0.99,
-        step_size: Any = 0.1,
+        step_size: float | Schedule = 0.1,
         initial_value: InitialValue = 0.0,
-        seed: Any = None,
+        seed: SeedLike = None,
         state_encoder: Any = None,
         action_encoder: Any = None,
-        **kwargs: Any,
     ) -> None:
-        super().__init__(
-            n_states, n_actions, gamma=gamma, step_size=step_size, exploration=0.0,
+        TabularAgent.__init__(
+            self, n_states, n_actions, gamma=gamma, step_size=step_size, exploration=0.0,
             initial_value=initial_value, seed=seed, state_encoder=state_encoder,
-            action_encoder=action_encoder, **kwargs,
+            action_encoder=action_encoder,
         )
+        self._start_policy(policy)
+
+    def _start_policy(self, policy: Any) -> None:
         self.policy = policy
         self._policy_cum, self._policy_fn = self._check_policy(policy)
 
@@ -138,7 +145,7 @@ class _PolicyLearner(TabularAgent):
     def act(self, obs: Any, *, mask: Any = None, explore: bool = True) -> Any:
         """An action drawn from the given policy (``explore`` is ignored)."""
         if mask is not None:
-            mask = check_mask(mask, self.n_actions)
+            mask = self._sets.get(mask).mask
         if self._policy_fn is not None:
             action = self._policy_fn(obs)
             if mask is not None and not mask[self._action_index(action)]:
@@ -170,20 +177,17 @@ class _PolicyLearner(TabularAgent):
             a -= 1
         return a
 
-    # ------------------------------------------------------------------ params
-    def get_params(self) -> dict[str, Any]:
-        """Constructor arguments, as given."""
-        params = super().get_params()
-        del params["exploration"]
-        return params
 
-    def __repr__(self) -> str:
-        shown = ("n_states", "n_actions", "gamma", "step_size", *self._extra_params)
-        params = self.get_params()
-        return f"{type(self).__name__}({', '.join(f'{k}={params[k]!r}' for k in shown)})"
+class TD0(_PolicyLearner):
+    r"""TD(0) prediction of the state values of a given policy.
 
+    .. math::
+        V(S_t) \leftarrow V(S_t) + \alpha\,[R_{t+1} + \gamma V(S_{t+1}) - V(S_t)]
 
-_POLICY_DOC = r"""
+    (just :math:`R_{t+1}` as target after ``terminated``). :meth:`fit_batch`
+    runs batch TD(0) over a fixed set of episodes, whose fixed point is the
+    certainty-equivalence estimate (Sutton & Barto 2018, Section 6.3).
+
     Parameters
     ----------
     n_states, n_actions : int
@@ -198,19 +202,7 @@ _POLICY_DOC = r"""
     seed : int, Generator or None
         Seeds the draws of actions from a policy table.
     state_encoder, action_encoder : optional
-        See :mod:`tdkit.encoders`."""
-
-
-class TD0(_PolicyLearner):
-    __doc__ = r"""TD(0) prediction of the state values of a given policy.
-
-    .. math::
-        V(S_t) \leftarrow V(S_t) + \alpha\,[R_{t+1} + \gamma V(S_{t+1}) - V(S_t)]
-
-    (just :math:`R_{t+1}` as target after ``terminated``). :meth:`fit_batch`
-    runs batch TD(0) over a fixed set of episodes, whose fixed point is the
-    certainty-equivalence estimate (Sutton & Barto 2018, Section 6.3).
-    """ + _POLICY_DOC + r"""
+        See :mod:`tdkit.encoders`.
 
     Raises
     ------
@@ -246,7 +238,8 @@ class TD0(_PolicyLearner):
         *,
         step_size: float | None = None,
         tol: float = 1e-12,
-        max_sweeps: int = 100_000,
+        max_iterations: int = 100_000,
+        max_sweeps: int | None = None,
     ) -> int:
         r"""Batch TD(0): sweep a fixed set of episodes until the values stop changing.
 
@@ -274,7 +267,11 @@ class TD0(_PolicyLearner):
             :math:`\alpha \in (0, 1]`; default the learner's constant step size.
         tol : float, default 1e-12
             Stop when no value changes by more than this in a sweep.
-        max_sweeps : int, default 100000
+        max_iterations : int, default 100000
+            Most sweeps to run.
+        max_sweeps : int, optional
+            Deprecated spelling of ``max_iterations`` (a ``FutureWarning``;
+            removed in 0.3.0).
 
         Returns
         -------
@@ -285,7 +282,7 @@ class TD0(_PolicyLearner):
         ------
         ValueError
             On a malformed transition, a schedule step size without an
-            explicit ``step_size``, or no convergence within ``max_sweeps``.
+            explicit ``step_size``, or no convergence within ``max_iterations``.
 
         Examples
         --------
@@ -304,9 +301,17 @@ class TD0(_PolicyLearner):
                 )
             alpha = self._alpha_const
         else:
-            alpha = check_in_range(name, "step_size", step_size, 0.0, 1.0, low_open=True)
-        tol = check_in_range(name, "tol", tol, 0.0, math.inf, low_open=True)
-        max_sweeps = check_positive_int(name, "max_sweeps", max_sweeps)
+            alpha = require_in_range(name, "step_size", step_size, 0.0, 1.0, low_open=True)
+        tol = require_in_range(name, "tol", tol, 0.0, math.inf, low_open=True)
+        if max_sweeps is not None:
+            warnings.warn(
+                f"{name}: max_sweeps is deprecated and will be removed in tdkit 0.3.0; use "
+                "max_iterations=... (the name every tdkit solver uses).",
+                FutureWarning,
+                stacklevel=2,
+            )
+            max_iterations = max_sweeps
+        max_sweeps = require_positive_int(name, "max_iterations", max_iterations)
         rows = []
         for episode in episodes:
             for item in episode:
@@ -339,14 +344,14 @@ class TD0(_PolicyLearner):
             if np.max(np.abs(change)) <= tol:
                 return sweep
         raise InvalidParameterError(
-            f"{name}: no convergence within max_sweeps={max_sweeps} (last change "
-            f"{float(np.max(np.abs(change))):.3g} > tol={tol:g}); raise max_sweeps or tol, or "
+            f"{name}: no convergence within max_iterations={max_sweeps} (last change "
+            f"{float(np.max(np.abs(change))):.3g} > tol={tol:g}); raise max_iterations or tol, or "
             "check that every episode can reach its end (gamma = 1 needs proper episodes)."
         )
 
 
-class TDLambda(_PolicyLearner, _TraceLearner):
-    __doc__ = r"""TD(λ) prediction of the state values of a given policy, with eligibility traces.
+class TDLambda(_PolicyLearner, TraceLearner):
+    r"""TD(λ) prediction of the state values of a given policy, with eligibility traces.
 
     .. math::
         \delta_t = R_{t+1} + \gamma V(S_{t+1}) - V(S_t), \qquad
@@ -356,7 +361,41 @@ class TDLambda(_PolicyLearner, _TraceLearner):
     online TD(λ) (van Seijen & Sutton 2014). Traces are sparse and cleared at
     every episode end; no bootstrap after ``terminated``. With ``lam=0`` this
     is :class:`TD0`.
-    """ + _POLICY_DOC + _TRACE_PARAMS_DOC + r"""
+
+    Parameters
+    ----------
+    n_states, n_actions : int
+        Table shape (states; actions of the policy).
+    policy : array_like of shape (n_states, n_actions), or callable
+        Action probabilities per state (rows sum to 1), or ``obs -> action``.
+    gamma : float, default 0.99
+        Discount factor in [0, 1].
+    step_size : float or Schedule, default 0.1
+        :math:`\alpha \in (0, 1]` or a schedule (e.g. ``VisitCount(1.0)``).
+    initial_value : float or (float, float), default 0.0
+    seed : int, Generator or None
+        Seeds the draws of actions from a policy table.
+    state_encoder, action_encoder : optional
+        See :mod:`tdkit.encoders`.
+    lam : float, default 0.9
+        Trace decay :math:`\lambda \in [0, 1]`.
+    trace : {"accumulating", "replacing", "dutch"}, default "accumulating"
+        How the visited pair's trace is bumped: :math:`z \leftarrow z + 1`,
+        :math:`z \leftarrow 1`, or the dutch trace
+        :math:`z \leftarrow (1 - \alpha) z + 1` with the true online update
+        :math:`Q \leftarrow Q + \alpha(\delta + Q_t - Q_{old}) z - \alpha (Q_t - Q_{old}) x_t`
+        (van Seijen & Sutton 2014; Sutton & Barto 2018, Section 12.8).
+    trace_cutoff : float, default 1e-8
+        Traces that decay to this value or below are dropped (``0`` keeps
+        every nonzero trace, the exact algorithm).
+
+    Raises
+    ------
+    ValueError
+        If ``lam`` is outside [0, 1], ``trace`` is not one of the three kinds,
+        ``trace_cutoff`` is outside [0, 1), or another hyper-parameter is
+        out of range.
+
     References
     ----------
     .. [1] Sutton, R. S. (1988). Learning to predict by the methods of
@@ -378,7 +417,30 @@ class TDLambda(_PolicyLearner, _TraceLearner):
     [2.0, 2.0, 0.0]
     """
 
-    _extra_params: ClassVar[tuple[str, ...]] = ("policy", "lam", "trace", "trace_cutoff")
+    def __init__(
+        self,
+        n_states: int,
+        n_actions: int,
+        *,
+        policy: Any,
+        lam: float = 0.9,
+        trace: str = "accumulating",
+        trace_cutoff: float = 1e-8,
+        gamma: float = 0.99,
+        step_size: float | Schedule = 0.1,
+        initial_value: InitialValue = 0.0,
+        seed: SeedLike = None,
+        state_encoder: Any = None,
+        action_encoder: Any = None,
+    ) -> None:
+        self._check_trace_params(lam, trace, trace_cutoff)
+        TabularAgent.__init__(
+            self, n_states, n_actions, gamma=gamma, step_size=step_size, exploration=0.0,
+            initial_value=initial_value, seed=seed, state_encoder=state_encoder,
+            action_encoder=action_encoder,
+        )
+        self._start_policy(policy)
+        self._start_traces()
 
     def _column(self, a: int) -> int:
         return 0

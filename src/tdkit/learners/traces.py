@@ -19,116 +19,33 @@ active traces move with that one step size.
 
 from __future__ import annotations
 
-from typing import Any, ClassVar
-
 import numpy as np
 
-from .._greedy import masked_max
-from .._validation import check_in_range
-from ..agent import TabularAgent, Transition
 from ._commit import CommitsNextAction
-from ._traces_math import check_trace, trace_step
+from ._targets import greedy_max, sampled_value
+from ._traces_math import TraceLearner
 
 __all__ = ["SarsaLambda", "WatkinsQLambda"]
 
 
-class _TraceLearner(TabularAgent):
-    """Trace bookkeeping shared by the trace learners (control and prediction)."""
+class SarsaLambda(CommitsNextAction, TraceLearner):
+    r"""Sarsa(λ): on-policy TD control with eligibility traces.
 
-    _extra_params: ClassVar[tuple[str, ...]] = ("lam", "trace", "trace_cutoff")
+    .. math::
+        \delta_t = R_{t+1} + \gamma Q(S_{t+1}, A_{t+1}) - Q(S_t, A_t), \qquad
+        Q \leftarrow Q + \alpha\,\delta_t\,z_t, \qquad z \leftarrow \gamma\lambda z
 
-    def __init__(
-        self,
-        n_states: int,
-        n_actions: int,
-        *,
-        lam: float = 0.9,
-        trace: str = "accumulating",
-        trace_cutoff: float = 1e-8,
-        **kwargs: Any,
-    ) -> None:
-        name = type(self).__name__
-        self.lam = check_in_range(name, "lam", lam, 0.0, 1.0)
-        self.trace = check_trace(name, trace)
-        self.trace_cutoff = check_in_range(
-            name, "trace_cutoff", trace_cutoff, 0.0, 1.0, high_open=True,
-            hint="Use 0 to keep every nonzero trace (exact), or a small value like 1e-8.",
-        )
-        super().__init__(n_states, n_actions, **kwargs)
-        self._flat = self._q.reshape(-1)
-        if not np.shares_memory(self._flat, self._q):  # pragma: no cover - tables are contiguous
-            raise RuntimeError(f"{name}: the value table must be C-contiguous.")
-        self._width = self._q.shape[1]
-        self._traces: dict[int, float] = {}
-        self._q_old = 0.0  # true online: the value of this step's pair as estimated last step
-        self._expect: int | None = None  # where the next transition should start
-        self._mask_now: np.ndarray | None = None  # mask of that state, if known
+    :math:`A_{t+1}` is committed as in :class:`~tdkit.Sarsa` (the next
+    ``act(next_obs)`` returns it). No bootstrap after ``terminated``; after
+    ``truncated`` the error bootstraps with a drawn, uncommitted action. The
+    traces are cleared at every episode end. With ``lam=0`` this is
+    :class:`~tdkit.Sarsa`.
 
-    # -------------------------------------------------------------- hooks
-    def _column(self, a: int) -> int:
-        """Table column of action ``a`` (prediction learners have one column)."""
-        return a
-
-    def _next_value(
-        self, s2: int, next_mask: np.ndarray | None, terminated: bool, truncated: bool
-    ) -> float:
-        """The bootstrap value of ``s2`` (ignored when ``terminated``)."""
-        raise NotImplementedError
-
-    def _before_step(self, s: int, a: int) -> None:
-        """Called before the trace of ``(s, a)`` is bumped."""
-
-    # -------------------------------------------------------------- machinery
-    def _reset_traces(self) -> None:
-        self._traces.clear()
-        self._q_old = 0.0
-        self._expect = None
-        self._mask_now = None
-
-    def _learn(self, transition: Transition) -> tuple[float, ...]:
-        s, a, r, s2, terminated, truncated, next_mask = transition
-        if self._expect is not None and s != self._expect:
-            self._reset_traces()
-        self._before_step(s, a)
-        q_next = self._next_value(s2, next_mask, terminated, truncated)
-        col = self._column(a)
-        alpha = self._count_visit(self._visits, s, col)
-        k = s * self._width + col
-        q_sa = float(self._flat[k])
-        target = r if terminated else r + self.gamma * q_next
-        delta = target - q_sa
-        dutch = self.trace == "dutch"
-        trace_step(
-            self._flat, self._traces, k, delta, alpha, self.gamma * self.lam, self.trace,
-            self.trace_cutoff, (q_sa - self._q_old) if dutch else 0.0,
-        )
-        if terminated or truncated:
-            self._reset_traces()
-        else:
-            self._q_old = q_next
-            self._expect = s2
-            self._mask_now = next_mask
-        return (delta,)
-
-    def _end_episode(self) -> None:
-        self._reset_traces()
-        super()._end_episode()
-
-    @property
-    def traces(self) -> dict[tuple[int, int], float]:
-        """The active eligibility traces ``{(state, column): e}`` (a copy)."""
-        width = self._width
-        return {divmod(k, width): e for k, e in self._traces.items()}  # type: ignore[misc]
-
-
-_CONTROL_PARAMS_DOC = r"""
     Parameters
     ----------
     n_states, n_actions, gamma, step_size, exploration, initial_value, seed
         As for :class:`~tdkit.QLearning`; so are ``state_encoder`` and
-        ``action_encoder``."""
-
-_TRACE_PARAMS_DOC = r"""
+        ``action_encoder``.
     lam : float, default 0.9
         Trace decay :math:`\lambda \in [0, 1]`.
     trace : {"accumulating", "replacing", "dutch"}, default "accumulating"
@@ -147,22 +64,7 @@ _TRACE_PARAMS_DOC = r"""
         If ``lam`` is outside [0, 1], ``trace`` is not one of the three kinds,
         ``trace_cutoff`` is outside [0, 1), or another hyper-parameter is
         out of range.
-"""
 
-
-class SarsaLambda(CommitsNextAction, _TraceLearner):
-    __doc__ = r"""Sarsa(λ): on-policy TD control with eligibility traces.
-
-    .. math::
-        \delta_t = R_{t+1} + \gamma Q(S_{t+1}, A_{t+1}) - Q(S_t, A_t), \qquad
-        Q \leftarrow Q + \alpha\,\delta_t\,z_t, \qquad z \leftarrow \gamma\lambda z
-
-    :math:`A_{t+1}` is committed as in :class:`~tdkit.Sarsa` (the next
-    ``act(next_obs)`` returns it). No bootstrap after ``terminated``; after
-    ``truncated`` the error bootstraps with a drawn, uncommitted action. The
-    traces are cleared at every episode end. With ``lam=0`` this is
-    :class:`~tdkit.Sarsa`.
-    """ + _CONTROL_PARAMS_DOC + _TRACE_PARAMS_DOC + r"""
     References
     ----------
     .. [1] Rummery, G. A. & Niranjan, M. (1994). On-line Q-learning using
@@ -194,11 +96,11 @@ class SarsaLambda(CommitsNextAction, _TraceLearner):
         if terminated:
             self._drop_next_action()
             return 0.0
-        return float(self._q[s2, self._next_action(s2, next_mask, truncated)])
+        return sampled_value(self._row(s2), self._next_action(s2, next_mask, truncated))
 
 
-class WatkinsQLambda(_TraceLearner):
-    __doc__ = r"""Watkins's Q(λ): off-policy Q-learning with traces cut after exploratory actions.
+class WatkinsQLambda(TraceLearner):
+    r"""Watkins's Q(λ): off-policy Q-learning with traces cut after exploratory actions.
 
     .. math::
         \delta_t = R_{t+1} + \gamma \max_{a} Q(S_{t+1}, a) - Q(S_t, A_t), \qquad
@@ -216,7 +118,31 @@ class WatkinsQLambda(_TraceLearner):
     of Section 12.8 is applied with the Q-learning error along greedy
     stretches (our combination, checked by the tests against Q-learning at
     ``lam=0`` and against :math:`Q^*`).
-    """ + _CONTROL_PARAMS_DOC + _TRACE_PARAMS_DOC + r"""
+
+    Parameters
+    ----------
+    n_states, n_actions, gamma, step_size, exploration, initial_value, seed
+        As for :class:`~tdkit.QLearning`; so are ``state_encoder`` and
+        ``action_encoder``.
+    lam : float, default 0.9
+        Trace decay :math:`\lambda \in [0, 1]`.
+    trace : {"accumulating", "replacing", "dutch"}, default "accumulating"
+        How the visited pair's trace is bumped: :math:`z \leftarrow z + 1`,
+        :math:`z \leftarrow 1`, or the dutch trace
+        :math:`z \leftarrow (1 - \alpha) z + 1` with the true online update
+        :math:`Q \leftarrow Q + \alpha(\delta + Q_t - Q_{old}) z - \alpha (Q_t - Q_{old}) x_t`
+        (van Seijen & Sutton 2014; Sutton & Barto 2018, Section 12.8).
+    trace_cutoff : float, default 1e-8
+        Traces that decay to this value or below are dropped (``0`` keeps
+        every nonzero trace, the exact algorithm).
+
+    Raises
+    ------
+    ValueError
+        If ``lam`` is outside [0, 1], ``trace`` is not one of the three kinds,
+        ``trace_cutoff`` is outside [0, 1), or another hyper-parameter is
+        out of range.
+
     References
     ----------
     .. [1] Watkins, C. J. C. H. (1989). Learning from Delayed Rewards. PhD
@@ -237,8 +163,8 @@ class WatkinsQLambda(_TraceLearner):
 
     def _before_step(self, s: int, a: int) -> None:
         if self._traces:
-            row = self._q[s]
-            if row[a] < masked_max(row, self._mask_now):
+            row = self._row(s)
+            if row[a] < greedy_max(row, self._allowed(self._mask_now)):
                 self._traces.clear()
 
     def _next_value(
@@ -246,4 +172,4 @@ class WatkinsQLambda(_TraceLearner):
     ) -> float:
         if terminated:
             return 0.0
-        return masked_max(self._q[s2], next_mask)
+        return greedy_max(self._row(s2), self._allowed(next_mask))

@@ -19,8 +19,8 @@ def load_factory(spec: str) -> Any:
     """Import ``module:attribute`` (the attribute may be dotted) and return it.
 
     An agent class with ``for_env`` (``tdkit:QLearning``) becomes
-    ``agent_factory(cls)``. The current directory is importable, as with
-    ``python -m``.
+    ``agent_factory(cls)``. The current directory is importable while the
+    module is imported, as with ``python -m``; ``sys.path`` is restored after.
 
     Raises
     ------
@@ -34,7 +34,8 @@ def load_factory(spec: str) -> Any:
             f"verify: expected package.module:factory; got {spec!r}. Example: "
             "python -m tdkit verify my_agents.tests:make_agent"
         )
-    if os.getcwd() not in sys.path:
+    added = os.getcwd() not in sys.path
+    if added:
         sys.path.insert(0, os.getcwd())
     try:
         obj: Any = importlib.import_module(module_name)
@@ -43,6 +44,9 @@ def load_factory(spec: str) -> Any:
             f"verify: cannot import module {module_name!r} ({exc}); check the name and that it "
             "is on the Python path (run from the project directory or install it)."
         ) from None
+    finally:
+        if added:  # importable for this import only: the caller's sys.path is left as it was
+            sys.path.remove(os.getcwd())
     for part in attribute.split("."):
         try:
             obj = getattr(obj, part)

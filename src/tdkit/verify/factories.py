@@ -1,7 +1,7 @@
-"""Picklable agent factories (public path); they live in the runs layer, :mod:`tdkit._factories`."""
+"""Picklable agent factories (public path); they live in :mod:`tdkit.runs._factories`."""
 
 from __future__ import annotations
 
-from .._factories import AgentFactory, agent_factory
+from ..runs._factories import AgentFactory, agent_factory
 
 __all__ = ["AgentFactory", "agent_factory"]

@@ -37,10 +37,10 @@ from typing import Any
 
 import numpy as np
 
-from .._dispatch import dispatch
-from .._results import SweepRunError
-from .._runs import check_callable, check_executor, check_seeds, seeded_run
-from .._validation import check_in_range, check_positive_int
+from .._validation import require_in_range, require_positive_int
+from ..runs._dispatch import dispatch
+from ..runs._one_run import check_callable, check_executor, check_seeds, seeded_run
+from ..runs._results import SweepRunError
 from ..stats import ScoreSummary, WelchResult, summarize_scores, welch_test
 
 __all__ = ["AgentScores", "PerformanceComparison", "compare_performance", "run_score"]
@@ -161,13 +161,13 @@ def compare_performance(
     for name, value in (("make_a", make_a), ("make_b", make_b), ("make_env", make_env)):
         check_callable(owner, name, value)
     seed_list = check_seeds(owner, seeds, minimum=2, distinct=False)
-    episodes = check_positive_int(owner, "episodes", episodes)
-    eval_episodes = check_positive_int(owner, "eval_episodes", eval_episodes)
+    episodes = require_positive_int(owner, "episodes", episodes)
+    eval_episodes = require_positive_int(owner, "eval_episodes", eval_episodes)
     if max_episode_steps is not None:
-        max_episode_steps = check_positive_int(owner, "max_episode_steps", max_episode_steps)
-    confidence = check_in_range(owner, "confidence", confidence, 0.0, 1.0,
+        max_episode_steps = require_positive_int(owner, "max_episode_steps", max_episode_steps)
+    confidence = require_in_range(owner, "confidence", confidence, 0.0, 1.0,
                                 low_open=True, high_open=True)
-    n_resamples = check_positive_int(owner, "n_resamples", n_resamples)
+    n_resamples = require_positive_int(owner, "n_resamples", n_resamples)
     if executor is not None:
         check_executor(owner, executor, "submit")
     calls = [

@@ -27,9 +27,9 @@ from typing import Any, NamedTuple
 
 import numpy as np
 
-from ._errors import InvalidParameterError
-from .history import History
-from .loop import evaluate, train
+from .._errors import InvalidParameterError
+from ..history import History
+from ..loop import evaluate, train
 
 __all__ = [
     "RunSeeds",

@@ -14,10 +14,10 @@ from typing import Any
 
 import numpy as np
 
-from ._errors import InvalidParameterError, TdkitError
-from ._validation import check_in_range, check_positive_int
-from .history import History
-from .stats import ConfidenceInterval, ScoreSummary, summarize_scores
+from .._errors import InvalidParameterError, TdkitError
+from .._validation import require_in_range, require_positive_int
+from ..history import History
+from ..stats import ConfidenceInterval, ScoreSummary, summarize_scores
 
 __all__ = [
     "METRICS",
@@ -337,9 +337,9 @@ class SweepResult:
         """
         owner = "SweepResult.summary"
         self._check_metric(owner, metric)
-        confidence = check_in_range(owner, "confidence", confidence, 0.0, 1.0,
+        confidence = require_in_range(owner, "confidence", confidence, 0.0, 1.0,
                                     low_open=True, high_open=True)
-        n_resamples = check_positive_int(owner, "n_resamples", n_resamples)
+        n_resamples = require_positive_int(owner, "n_resamples", n_resamples)
         rows = []
         for index, setting in enumerate(self.settings):
             label = setting_label(setting)

@@ -44,7 +44,7 @@ from concurrent.futures import (
 from dataclasses import dataclass, field
 from typing import Any, NamedTuple
 
-from ._text import describe_exception
+from .._text import describe_exception
 
 __all__ = ["RunFailure", "RelayedWarning", "RunOutcome", "dispatch", "reissue_warnings"]
 

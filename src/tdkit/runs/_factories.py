@@ -10,7 +10,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from typing import Any
 
-from ._errors import InvalidParameterError
+from .._errors import InvalidParameterError
 
 __all__ = ["AgentFactory", "agent_factory"]
 

@@ -1,0 +1,219 @@
+"""Per-step cost of a learner's act + observe + update, on replayed Taxi transitions.
+
+A random-action run of gymnasium's Taxi (``Taxi-v4``, or ``Taxi-v3`` where v4
+is not registered) is recorded once: states, actions, rewards, next states,
+episode ends and ``info["action_mask"]``. Every agent below then replays the
+same transitions: for each one it is asked ``act(state)`` (its choice is
+computed but the recorded action is observed, so all agents see identical
+data), then ``observe(...)`` and ``update()``. The environment is not in the
+timed loop, so the numbers are the agent's own cost.
+
+Agents, all ε-greedy Q-learning (α = 0.1, γ = 0.99, ε = 0.1) with greedy ties
+broken uniformly at random:
+
+* ``tdkit``: :class:`tdkit.QLearning`.
+* ``pure Python``: a hand-written agent holding Q as a list of lists. It draws
+  its uniforms one at a time from a ``numpy.random.Generator`` with the same
+  seed, in the same order as tdkit, so both end with the *same* table (checked
+  below): the two do exactly the same work.
+* ``textbook numpy``: the usual hand-written agent on a numpy table
+  (``row.max()``, ``np.flatnonzero`` for ties, ``rng.integers``).
+* ``pure Python, stdlib random``: the pure-Python agent drawing from the
+  standard library's ``random`` module instead (other random numbers, so its
+  table differs; shown for reference, it is not the comparison the targets use).
+
+Masks: tdkit with Taxi's int8 ``action_mask`` passed as ``mask=`` to act and
+``next_mask=`` to observe, against tdkit without masks; the difference per
+step is the cost of masks.
+
+Each round runs every agent once, in a shuffled order, so machine noise hits
+all of them alike (a first warm-up round is discarded). Times are CPU time of
+this process (``time.process_time``), so other programs on a shared machine
+inflate them less than wall-clock time would. The ratios use each agent's best
+round (interference only ever adds time, so the best round is the least
+disturbed one); the medians of the per-round ratios are printed beside them.
+
+Targets (issue 11): tdkit ≤ 1.25 × pure Python, ≥ 3 × faster than textbook
+numpy, masks ≤ 1 µs per step.
+
+Run: ``python benchmarks/bench_step.py [--steps 20000] [--rounds 25]``;
+``--smoke`` runs a tiny size (for CI).
+"""
+
+from __future__ import annotations
+
+import argparse
+import random
+import statistics
+import time
+from collections.abc import Callable
+from typing import Any
+
+import gymnasium as gym
+import numpy as np
+
+import tdkit
+
+ALPHA, GAMMA, EPSILON = 0.1, 0.99, 0.1
+
+#: One recorded transition: (s, a, r, s2, terminated, truncated, mask of s, mask of s2)
+Replay = list[tuple[int, int, float, int, bool, bool, Any, Any]]
+
+
+def record(steps: int, seed: int) -> Replay:
+    """Random-action Taxi transitions with their action masks (Python scalars)."""
+    env = gym.make("Taxi-v4" if "Taxi-v4" in gym.registry else "Taxi-v3")
+    rng = np.random.default_rng(seed)
+    out: Replay = []
+    s, info = env.reset(seed=seed)
+    mask = info["action_mask"]
+    while len(out) < steps:
+        a = int(rng.integers(6))
+        s2, r, terminated, truncated, info2 = env.step(a)
+        mask2 = info2["action_mask"]
+        out.append((int(s), a, float(r), int(s2), bool(terminated), bool(truncated), mask, mask2))
+        if terminated or truncated:
+            s, info = env.reset()
+            mask = info["action_mask"]
+        else:
+            s, mask = s2, mask2
+    return out
+
+
+class PurePythonQ:
+    """Q-learning written directly in Python lists; ``draw`` gives uniforms in [0, 1)."""
+
+    def __init__(self, n_states: int, n_actions: int, draw: Callable[[], float]) -> None:
+        self.q = [[0.0] * n_actions for _ in range(n_states)]
+        self.n_actions = n_actions
+        self.draw = draw
+        self.pending: tuple[int, int, float, int, bool] | None = None
+
+    def act(self, s: int) -> int:
+        if self.draw() < EPSILON:
+            return int(self.draw() * self.n_actions)
+        row = self.q[s]
+        top = max(row)
+        if row.count(top) == 1:
+            return row.index(top)
+        ties = [a for a, v in enumerate(row) if v == top]
+        return ties[int(self.draw() * len(ties))]
+
+    def observe(self, s: int, a: int, r: float, s2: int, terminated: bool, truncated: bool) -> None:
+        self.pending = (s, a, r, s2, terminated)
+
+    def update(self) -> None:
+        s, a, r, s2, terminated = self.pending  # type: ignore[misc]
+        self.pending = None
+        target = r if terminated else r + GAMMA * max(self.q[s2])
+        row = self.q[s]
+        row[a] += ALPHA * (target - row[a])
+
+
+class NumpyQ:
+    """The textbook agent: a numpy table, ``max`` and ``flatnonzero`` for greedy ties."""
+
+    def __init__(self, n_states: int, n_actions: int, seed: int) -> None:
+        self.q = np.zeros((n_states, n_actions))
+        self.n_actions = n_actions
+        self.rng = np.random.default_rng(seed)
+        self.pending: tuple[int, int, float, int, bool] | None = None
+
+    def act(self, s: int) -> int:
+        if self.rng.random() < EPSILON:
+            return int(self.rng.integers(self.n_actions))
+        row = self.q[s]
+        ties = np.flatnonzero(row == row.max())
+        return int(ties[self.rng.integers(len(ties))])
+
+    def observe(self, s: int, a: int, r: float, s2: int, terminated: bool, truncated: bool) -> None:
+        self.pending = (s, a, r, s2, terminated)
+
+    def update(self) -> None:
+        s, a, r, s2, terminated = self.pending  # type: ignore[misc]
+        self.pending = None
+        target = r if terminated else r + GAMMA * self.q[s2].max()
+        self.q[s, a] += ALPHA * (target - self.q[s, a])
+
+
+def tdkit_agent(seed: int) -> tdkit.QLearning:
+    return tdkit.QLearning(500, 6, gamma=GAMMA, step_size=ALPHA, exploration=EPSILON, seed=seed)
+
+
+def replay(agent: Any, data: Replay) -> float:
+    """Seconds per transition of act + observe + update over ``data``."""
+    act, observe, update = agent.act, agent.observe, agent.update
+    start = time.process_time()
+    for s, a, r, s2, terminated, truncated, _m, _m2 in data:
+        act(s)
+        observe(s, a, r, s2, terminated, truncated)
+        update()
+    return (time.process_time() - start) / len(data)
+
+
+def replay_masked(agent: Any, data: Replay) -> float:
+    """As :func:`replay`, passing Taxi's action masks to act and observe."""
+    act, observe, update = agent.act, agent.observe, agent.update
+    start = time.process_time()
+    for s, a, r, s2, terminated, truncated, m, m2 in data:
+        act(s, mask=m)
+        observe(s, a, r, s2, terminated, truncated, next_mask=m2)
+        update()
+    return (time.process_time() - start) / len(data)
+
+
+def main(argv: list[str] | None = None) -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--steps", type=int, default=20_000)
+    parser.add_argument("--rounds", type=int, default=25)
+    parser.add_argument("--smoke", action="store_true", help="tiny sizes, for CI")
+    args = parser.parse_args(argv)
+    if args.smoke:
+        args.steps, args.rounds = 2_000, 1
+    data = record(args.steps, seed=0)
+
+    names = ["tdkit", "pure Python", "textbook numpy", "pure Python, stdlib random",
+             "tdkit, masks"]
+    times: dict[str, list[float]] = {name: [] for name in names}
+    order = np.random.default_rng(0)
+    for k in range(args.rounds + 1):  # round 0 warms up and is discarded
+        tdkit_run = tdkit_agent(k)
+        python_run = PurePythonQ(500, 6, np.random.default_rng(k).random)
+        agents: dict[str, tuple[Any, Callable[[Any, Replay], float]]] = {
+            "tdkit": (tdkit_run, replay),
+            "pure Python": (python_run, replay),
+            "textbook numpy": (NumpyQ(500, 6, k), replay),
+            "pure Python, stdlib random": (PurePythonQ(500, 6, random.Random(k).random), replay),
+            "tdkit, masks": (tdkit_agent(k), replay_masked),
+        }
+        measured = {}
+        for i in order.permutation(len(names)):
+            agent, run = agents[names[i]]
+            measured[names[i]] = run(agent, data)
+        if tdkit_run.table.tolist() != python_run.q:
+            raise SystemExit("tdkit and the pure-Python agent disagree: not the same work.")
+        if k > 0:
+            for name in names:
+                times[name].append(measured[name])
+    vs_python = [t / p for t, p in zip(times["tdkit"], times["pure Python"], strict=True)]
+    vs_numpy = [n / t for t, n in zip(times["tdkit"], times["textbook numpy"], strict=True)]
+    mask_cost = [m - t for t, m in zip(times["tdkit"], times["tdkit, masks"], strict=True)]
+
+    best = {name: min(values) for name, values in times.items()}
+    print(f"Q-learning act + observe + update on {len(data)} replayed Taxi transitions, "
+          f"{args.rounds} round(s); CPU microseconds per step, best and median of rounds")
+    for name in names:
+        print(f"  {name:<28} best {best[name] * 1e6:6.2f}   median "
+              f"{statistics.median(times[name]) * 1e6:6.2f}")
+    print("  (tdkit and pure Python draw the same random numbers and end with the same table)")
+    print(f"  tdkit / pure Python        {best['tdkit'] / best['pure Python']:5.2f}x, bests "
+          f"(per-round median {statistics.median(vs_python):.2f})   target <= 1.25x")
+    print(f"  textbook numpy / tdkit     {best['textbook numpy'] / best['tdkit']:5.2f}x, bests "
+          f"(per-round median {statistics.median(vs_numpy):.2f})   target >= 3x")
+    print(f"  masks, per step            {(best['tdkit, masks'] - best['tdkit']) * 1e6:5.2f} us "
+          f"between the bests (per-round median {statistics.median(mask_cost) * 1e6:.2f})   "
+          "target <= 1 us")
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,107 @@
+"""The learners' per-step path: pure-Python greedy forms, cached action sets, table views.
+
+The pure-Python forms in ``tdkit._greedy`` must pick exactly what the numpy
+forms pick from the same random numbers (an equivalence, checked with
+hypothesis), masks must be checked once per distinct mask, and the views the
+per-step path reads and writes must be the public tables themselves.
+"""
+
+from __future__ import annotations
+
+import pickle
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+import tdkit
+from tdkit._errors import InvalidParameterError
+from tdkit._greedy import ActionSets, greedy_action, greedy_index, masked_max, row_max
+
+# Few distinct values, so ties are common.
+rows = st.integers(1, 7).flatmap(
+    lambda n: st.lists(st.sampled_from([-1.0, 0.0, 0.5, 2.0]), min_size=n, max_size=n)
+)
+
+
+@settings(max_examples=300)
+@given(row=rows, seed=st.integers(0, 2**32 - 1), data=st.data())
+def test_pure_python_greedy_equals_numpy_greedy_draw_for_draw(row, seed, data):
+    n = len(row)
+    bits = data.draw(st.lists(st.booleans(), min_size=n, max_size=n))
+    mask = np.array(bits) if any(bits) else None
+    sets = ActionSets(n)
+    allowed = None if mask is None else sets.get(mask)
+    numpy_rng, python_rng = np.random.default_rng(seed), np.random.default_rng(seed)
+    for _ in range(5):
+        expected = greedy_action(np.array(row), mask, numpy_rng)
+        assert greedy_index(tuple(row), allowed, python_rng.random) == expected
+    assert numpy_rng.random() == python_rng.random()  # same numbers consumed
+    assert row_max(tuple(row), allowed) == masked_max(np.array(row), mask)
+
+
+def test_greedy_index_refuses_a_nan_maximum():
+    with pytest.raises(FloatingPointError, match="NaN"):
+        greedy_index((float("nan"), 1.0), None, lambda: 0.0)
+
+
+def test_action_sets_check_each_mask_once_and_accept_integer_masks():
+    sets = ActionSets(4)
+    taxi_like = np.array([1, 0, 1, 1], dtype=np.int8)  # gymnasium's Taxi gives int8 masks
+    allowed = sets.get(taxi_like)
+    assert allowed.indices == (0, 2, 3)
+    assert allowed.mask.dtype == bool and not allowed.mask.flags.writeable
+    assert sets.get(taxi_like.copy()) is allowed  # a look-up, no new arrays
+    assert sets.of(allowed.mask) is allowed
+    assert sets.get(np.array([True, False, True, True])).indices == (0, 2, 3)
+
+
+@pytest.mark.parametrize(
+    ("mask", "fragment"),
+    [
+        (np.array([0, 0, 0, 0], dtype=np.int8), "allows no action"),
+        (np.array([0, 2, 1, 0]), "booleans"),
+        (np.array([True, False]), "shape"),
+        (np.array([0.0, 1.0, 1.0, 1.0]), "booleans"),
+    ],
+)
+def test_bad_masks_are_refused_every_time(mask, fragment):
+    sets = ActionSets(4)
+    for _ in range(2):  # never cached
+        with pytest.raises(InvalidParameterError, match=fragment):
+            sets.get(mask)
+
+
+def test_a_bad_next_mask_names_itself_and_leaves_the_learner_unchanged():
+    agent = tdkit.QLearning(3, 2, seed=0)
+    with pytest.raises(InvalidParameterError, match="next_mask"):
+        agent.observe(0, 0, 1.0, 1, False, False, next_mask=np.array([0, 0]))
+    assert agent.update() == () and agent.steps_ == 0
+
+
+def test_the_per_step_path_reads_and_writes_the_public_tables():
+    agent = tdkit.QLearning(3, 2, gamma=1.0, step_size=1.0, exploration=0.0, seed=0)
+    agent._q[1] = [4.0, 7.0]  # written from outside: the per-step path must see it
+    assert agent.act(1) == 1
+    agent.observe(0, 0, 1.0, 1, False, False)
+    assert agent.update() == (8.0,)
+    assert agent.table[0, 0] == 8.0 and agent.visits[0, 0] == 1
+
+
+@pytest.mark.parametrize("cls", [tdkit.QLearning, tdkit.Sarsa, tdkit.ExpectedSarsa])
+def test_a_pickled_learner_continues_exactly(cls):
+    def run(agent, steps):
+        out = []
+        for t in range(steps):
+            s = t % 5
+            a = agent.act(s, mask=np.array([1, 1, t % 2], dtype=np.int8))
+            agent.observe(s, a, float(t % 3), (s + 1) % 5, t % 7 == 6, False)
+            out.extend(agent.update())
+        return out
+
+    agent = cls(5, 3, seed=3)
+    run(agent, 30)
+    clone = pickle.loads(pickle.dumps(agent))
+    assert run(clone, 40) == run(agent, 40)
+    np.testing.assert_array_equal(clone.table, agent.table)
