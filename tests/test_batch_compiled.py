@@ -1,7 +1,7 @@
 """The compiled path of tdkit.batch.train_batch against the numpy path and the scalar learners.
 
 1. Same draws, same run: both paths consume the same pre-drawn uniform numbers
-   (tdkit.batch._setup.uniform_blocks), so for every learner, exploration
+   (tdkit.runs.batch._setup.uniform_blocks), so for every learner, exploration
    rule, step-size kind, with and without masks and time limits, the compiled
    tables, visit counts, returns and lengths equal the numpy ones bit for bit.
 2. With the randomness removed (deterministic model, ε = 0, distinct starting
@@ -123,7 +123,7 @@ def test_compiled_equals_numpy_across_chunks_of_draws(monkeypatch):
     # Small blocks of uniforms (997 numbers: 6 steps of 40 SARSA learners, and a last
     # partial block), so state, action, episode records and the step count of the
     # schedules carry over between many kernel calls.
-    from tdkit.batch import _setup
+    from tdkit.runs.batch import _setup
 
     monkeypatch.setattr(_setup, "_CHUNK_NUMBERS", 997)
     mdp = stochastic_model()
@@ -289,7 +289,7 @@ _UNCOMPILED = textwrap.dedent("""
     from numba.core import config
     assert config.DISABLE_JIT
     from tdkit.batch import LEARNERS, train_batch
-    from tdkit.batch import _kernels
+    from tdkit.runs.batch import _kernels
     from tdkit.envs.problems import garnet
     from tdkit.exploration import Softmax
     from tdkit.schedules import Linear, VisitCount

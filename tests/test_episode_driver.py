@@ -14,9 +14,9 @@ import numpy as np
 import pytest
 
 import tdkit
-from tdkit import loop
 from tdkit.envs import adapt
 from tdkit.runs import EndlessEpisodeWarning, episode_seed, root_sequence, run_episode
+from tdkit.runs import training as loop
 
 
 class Chain(gym.Env):
@@ -252,3 +252,10 @@ def test_only_the_driver_steps_environments():
         if re.search(r"\benv\.step\(|\bstep_env\(", path.read_text()):
             offenders.append(rel)
     assert offenders == []
+
+
+def test_the_history_records_each_episodes_measured_wall_clock_time():
+    hist = tdkit.train(tdkit.QLearning(7, 1, seed=0), Chain(), episodes=3, seed=0)
+    assert hist.seconds.shape == (3,)
+    assert np.all(hist.seconds > 0) and np.all(np.isfinite(hist.seconds))
+    assert [r["seconds"] for r in hist.to_records()] == hist.seconds.tolist()

@@ -121,7 +121,7 @@ def test_history_records_and_frame():
     records = history.to_records()
     assert len(records) == len(history) == 50
     assert set(records[0]) == {
-        "episode", "return", "length", "end", "td_count", "td_abs_mean", "td_abs_max"
+        "episode", "return", "length", "end", "td_count", "td_abs_mean", "td_abs_max", "seconds"
     }
     assert records[3]["return"] == history.returns[3]
     assert all(r["td_count"] == r["length"] for r in records)  # one TD error per step

@@ -242,3 +242,37 @@ def test_checkpoints_are_taken_at_episode_boundaries_only(tmp_path):
     h_resumed = tdkit.train(resumed, env, episodes=40, seed=2, resume=ckpt)
     np.testing.assert_array_equal(h_resumed.returns, h_whole.returns)
     np.testing.assert_array_equal(resumed.table, whole.table)
+
+
+class _TupleWalk:
+    """A 1-D walk whose observations are tuples (indexed by a HashIndexEncoder)."""
+
+    def reset(self, seed=None):
+        self.x = 0
+        return ("x", 0), {}
+
+    def step(self, action):
+        self.x = max(0, self.x + (1 if action == 1 else -1))
+        done = self.x == 3
+        return ("x", self.x), float(done), done, False, {}
+
+
+def test_a_growing_state_index_is_restored_on_resume(tmp_path):
+    def fresh():
+        return tdkit.QLearning(10, 2, exploration=0.5, seed=2,
+                               state_encoder=HashIndexEncoder(capacity=10))
+
+    whole = fresh()
+    h_whole = tdkit.train(whole, _TupleWalk(), episodes=30, seed=4)
+    ckpt = tmp_path / "walk.npz"
+    tdkit.train(fresh(), _TupleWalk(), episodes=10, seed=4, checkpoint=ckpt)
+    resumed = fresh()
+    h = tdkit.train(resumed, _TupleWalk(), episodes=30, seed=4, resume=ckpt)
+    np.testing.assert_array_equal(h.returns, h_whole.returns)
+    np.testing.assert_array_equal(resumed.table, whole.table)
+    assert resumed.state_encoder.states == whole.state_encoder.states
+
+    other = fresh()
+    other.state_encoder.register([("x", 2), ("x", 0)])  # indexes in another order
+    with pytest.raises(StoreError, match="state_encoder"):
+        tdkit.store.load_checkpoint(ckpt, other)

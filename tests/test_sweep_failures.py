@@ -279,7 +279,7 @@ def test_the_endless_episode_warning_of_a_worker_reaches_the_caller(monkeypatch)
     # default); lowered to 50 here, an episode of 60 steps stands for one that never ends.
     from tdkit.runs import EndlessEpisodeWarning
 
-    monkeypatch.setattr(tdkit.loop, "_ENDLESS_STEPS", 50)
+    monkeypatch.setattr(tdkit.runs.training, "_ENDLESS_STEPS", 50)
     with pytest.warns(EndlessEpisodeWarning,
                       match=r"run with setting default, seed 0: episode 0 has run for 50 steps"):
         result = run_sweep(MAKE_Q, _long_chain(60).to_env, seeds=[0, 1], episodes=1,

@@ -32,7 +32,6 @@ from .dp import (
 from .dp_average import AverageSolution, policy_gain, relative_value_iteration
 from .dp_solve import solve
 from .envs.finite import FiniteMDP
-from .history import History
 from .learners import (
     TD0,
     DifferentialQLearning,
@@ -51,8 +50,9 @@ from .learners import (
     TreeBackup,
     WatkinsQLambda,
 )
-from .loop import evaluate, train
-from .store import load, save
+from .runs.history import History
+from .runs.store import load, save
+from .runs.training import evaluate, train
 
 __version__ = "0.1.0"
 

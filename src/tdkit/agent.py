@@ -36,6 +36,7 @@ from __future__ import annotations
 
 import functools
 import inspect
+import math
 import numbers
 import operator
 import struct
@@ -209,6 +210,14 @@ class TabularAgent:
 
     #: Advice for keywords a user may bring from another learner (see TD0).
     _keyword_hints: ClassVar[dict[str, str]] = {}
+
+    #: The learned state :mod:`tdkit.store` saves, as ``(attribute, kind)`` pairs;
+    #: subclasses declare only their own fields (see :mod:`tdkit.store` for the kinds).
+    _saved_state: ClassVar[tuple[tuple[str, str], ...]] = (
+        ("_q", "values"), ("_visits", "counts"), ("steps_", "counter"),
+        ("episodes_", "counter"), ("_steps_at_episode_end", "counter"),
+        ("_pending", "per_episode"),
+    )
 
     # Views onto the tables and other per-process helpers of the per-step path.
     # They are rebuilt from the tables (``_bind_tables``), never state: slots keep
@@ -660,7 +669,10 @@ class TabularAgent:
         ``weight`` is :math:`\rho` (an importance-sampling ratio; 1 for
         on-policy updates), and the returned error is :math:`\rho\,[G - Q(s,a)]`.
         ``visits[s, a]`` is incremented first, so per-pair schedules see the
-        count including this update.
+        count including this update. An update that would overflow the entry
+        to inf or NaN (rewards near the float limit) raises
+        :class:`~tdkit.InvalidParameterError` naming the step, and leaves the
+        table and the counts as they were.
         """
         if values is self._q and visits is self._visits:
             k = s * self._width + a
@@ -675,14 +687,32 @@ class TabularAgent:
             delta = target - old
             if weight != 1.0:
                 delta = weight * delta
-            qv[k] = old + alpha * delta
+            new = old + alpha * delta
+            if not math.isfinite(new):
+                vv[k] = n - 1
+                self._refuse_overflow(s, a, target, new)
+            qv[k] = new
             return float(delta)
         alpha = self._count_visit(visits, s, a)
-        delta = target - values[s, a]
+        q = values[s, a]
+        delta = target - q
         if weight != 1.0:
             delta = weight * delta
-        values[s, a] += alpha * delta
+        new = q + alpha * delta
+        if not math.isfinite(new):
+            visits[s, a] -= 1
+            self._refuse_overflow(s, a, target, new)
+        values[s, a] = new
         return float(delta)
+
+    def _refuse_overflow(self, s: int, a: int, target: float, new: float) -> None:
+        """Raise for an update whose new value is not finite (the caller changed nothing)."""
+        raise InvalidParameterError(
+            f"{type(self).__name__}: the update at step {self.steps_} (state {s}, action {a}, "
+            f"target {float(target)!r}) overflows Q to {float(new)!r}. Rewards and values this "
+            "close to the float limit cannot be learned; rescale the rewards. The table was "
+            "not changed."
+        )
 
     def _count_visit(self, visits: np.ndarray, s: int, a: int) -> float:
         """Increment ``visits[s, a]`` and return the step size for this update."""

@@ -32,7 +32,7 @@ from .dp import evaluate_policy, value_iteration
 from .envs.finite import FiniteMDP
 from .envs.inventory import InventoryEnv
 from .learners import DoubleQLearning, ExpectedSarsa, QLearning
-from .loop import train
+from .runs.training import train
 
 __all__ = ["DEMO_LEARNERS", "DemoResult", "LearnerResult", "run_demo"]
 

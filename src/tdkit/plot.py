@@ -33,8 +33,8 @@ from ._seeding import SeedLike, as_generator
 from ._validation import require_in_range, require_positive_int
 from .envs.finite import FiniteMDP
 from .envs.problems import KING_ACTIONS
-from .history import History
 from .runs._results import RunRecord, SweepResult, setting_label
+from .runs.history import History
 from .stats import bootstrap_band
 
 __all__ = ["plot_returns", "plot_values", "moving_average"]

@@ -9,16 +9,68 @@ from __future__ import annotations
 
 import math
 import numbers
+import os
 
 import numpy as np
 
-from ._errors import InvalidParameterError
+from ._errors import CapacityError, InvalidParameterError
 from ._validation import require_positive_int
 
-__all__ = ["ActionValueTable", "InitialValue", "initial_values"]
+__all__ = ["ActionValueTable", "InitialValue", "available_memory", "initial_values",
+           "require_capacity"]
 
 #: A constant (optimistic if large), or ``(low, high)`` for seeded uniform noise.
 InitialValue = float | tuple[float, float]
+
+
+def available_memory() -> int | None:
+    """Bytes of memory available to new allocations, or None when it cannot be told.
+
+    Reads ``MemAvailable`` from ``/proc/meminfo`` (Linux), else the physical
+    memory size from :func:`os.sysconf`. One small read, at construction only.
+    """
+    try:
+        with open("/proc/meminfo", "rb") as handle:
+            for line in handle:
+                if line.startswith(b"MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except (OSError, ValueError, IndexError):
+        pass
+    try:
+        return int(os.sysconf("SC_PHYS_PAGES")) * int(os.sysconf("SC_PAGE_SIZE"))
+    except (AttributeError, OSError, ValueError):  # pragma: no cover - platform dependent
+        return None
+
+
+def _readable(n: int) -> str:
+    for unit, size in (("TB", 1e12), ("GB", 1e9), ("MB", 1e6), ("kB", 1e3)):
+        if n >= size:
+            return f"{n / size:.3g} {unit}"
+    return f"{n} B"
+
+
+def require_capacity(owner: str, shape: tuple[int, ...], bytes_per_entry: int) -> None:
+    """Raise :class:`CapacityError` if tables of ``shape`` cannot fit in available memory.
+
+    ``bytes_per_entry`` adds up the item sizes of every array of that shape
+    about to be allocated (16 for a float64 table with int64 visit counts).
+
+    Examples
+    --------
+    >>> require_capacity("QLearning", (10**12, 4), 16)  # doctest: +ELLIPSIS
+    Traceback (most recent call last):
+    ...
+    tdkit.CapacityError: QLearning: a table of shape (1000000000000, 4) needs 64000000000000 ...
+    """
+    needed = math.prod(shape) * bytes_per_entry
+    available = available_memory()
+    if available is not None and needed > available:
+        raise CapacityError(
+            f"{owner}: a table of shape {shape} needs {needed} bytes ({_readable(needed)}) "
+            f"but only {available} bytes ({_readable(available)}) of memory are available. "
+            "Use fewer states (coarser bins, a smaller HashIndexEncoder capacity) or a machine "
+            "with more memory."
+        )
 
 
 def initial_values(
@@ -39,6 +91,7 @@ def initial_values(
     owner : str
         Name used in error messages.
     """
+    require_capacity(owner, shape, 8)
     if isinstance(initial_value, numbers.Real) and not isinstance(initial_value, bool):
         value = float(initial_value)
         if not math.isfinite(value):
@@ -95,6 +148,7 @@ class ActionValueTable:
     ) -> None:
         n_states = require_positive_int(owner, "n_states", n_states)
         n_actions = require_positive_int(owner, "n_actions", n_actions)
+        require_capacity(owner, (n_states, n_actions), 16)  # values and visits
         self.values = initial_values((n_states, n_actions), initial_value, rng, owner=owner)
         self.visits = np.zeros((n_states, n_actions), dtype=np.int64)
 

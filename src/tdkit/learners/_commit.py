@@ -19,7 +19,7 @@ only right when :math:`A_{t+1}` is the action the agent really takes next.
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Any, ClassVar
 
 import numpy as np
 
@@ -38,6 +38,8 @@ class CommitsNextAction:
     #: True when ``act`` ran before ``update`` (the update must use this action)
     #: and False when ``update`` drew it (the next ``act`` must return it).
     _committed: tuple[int, int, bool] | None = None
+
+    _saved_state: ClassVar[tuple[tuple[str, str], ...]] = (("_committed", "commitment"),)
 
     def act(self, obs: Any, *, mask: Any = None, explore: bool = True) -> Any:
         """Choose an action; with ``explore=True`` return the committed one when it applies."""

@@ -22,6 +22,9 @@ References
 
 from __future__ import annotations
 
+import math
+from typing import Any
+
 import numpy as np
 
 from .._errors import InvalidParameterError
@@ -76,6 +79,38 @@ class _PairIndex:
             ],
         }
 
+    @staticmethod
+    def _check_index_state(state: Any, n_states: int, n_actions: int) -> set[tuple[int, int]]:
+        """Check the index part of a saved state; return the observed pairs."""
+        _expect(isinstance(state, dict) and {"states", "actions", "predecessors", "table"}
+                <= set(state), "", state, "an object with states, actions, predecessors, table")
+        states = state["states"]
+        _expect(isinstance(states, list) and all(_is_index(s, n_states) for s in states)
+                and len(set(states)) == len(states), "states", states,
+                f"a list of distinct states in [0, {n_states})")
+        pairs: set[tuple[int, int]] = set()
+        seen: set[int] = set()
+        actions = state["actions"]
+        _expect(isinstance(actions, list), "actions", actions, "a list")
+        for item in actions:
+            ok = (isinstance(item, list) and len(item) == 2 and _is_index(item[0], n_states)
+                  and item[0] not in seen and isinstance(item[1], list) and item[1]
+                  and all(_is_index(a, n_actions) for a in item[1])
+                  and len(set(item[1])) == len(item[1]))
+            _expect(ok, "actions", item, "[state, [distinct actions]] with indices in range")
+            seen.add(item[0])
+            pairs.update((item[0], a) for a in item[1])
+        _expect(seen == set(states), "actions", actions, "one entry per observed state")
+        predecessors = state["predecessors"]
+        _expect(isinstance(predecessors, list), "predecessors", predecessors, "a list")
+        for item in predecessors:
+            ok = (isinstance(item, list) and len(item) == 2 and _is_index(item[0], n_states)
+                  and isinstance(item[1], list)
+                  and all(isinstance(p, list) and len(p) == 2 and (p[0], p[1]) in pairs
+                          for p in item[1]))
+            _expect(ok, "predecessors", item, "[state, [observed pairs]]")
+        return pairs
+
     def _set_index_state(self, state: dict) -> None:
         self.states = [int(s) for s in state["states"]]
         self.actions = {int(s): [int(a) for a in acts] for s, acts in state["actions"]}
@@ -83,6 +118,25 @@ class _PairIndex:
             int(s2): {(int(s), int(a)): None for s, a in pairs}
             for s2, pairs in state["predecessors"]
         }
+
+
+def _expect(ok: Any, where: str, value: Any, expected: str) -> None:
+    if not ok:
+        raise ValueError(f"model.{where}: {value!r:.80} is not {expected}.")
+
+
+def _is_index(value: Any, size: int) -> bool:
+    return isinstance(value, int) and not isinstance(value, bool) and 0 <= value < size
+
+
+def _is_real(value: Any) -> bool:
+    return (isinstance(value, (int, float)) and not isinstance(value, bool)
+            and math.isfinite(value))
+
+
+def _is_mask(value: Any, n_actions: int) -> bool:
+    return value is None or (isinstance(value, list) and len(value) == n_actions
+                             and all(isinstance(x, bool) for x in value) and any(value))
 
 
 def _mask_to_json(mask: np.ndarray | None) -> list[bool] | None:
@@ -144,6 +198,21 @@ class LastOutcomeModel(_PairIndex):
                 for (s, a), (r, s2, terminated, mask) in self._table.items()
             ],
         }
+
+    @classmethod
+    def check_state(cls, state: Any, n_states: int, n_actions: int) -> None:
+        """Raise ValueError naming the entry unless ``state`` fits a table of this size."""
+        pairs = cls._check_index_state(state, n_states, n_actions)
+        table = state["table"]
+        _expect(isinstance(table, list) and len(table) == len(pairs), "table", table,
+                "one row per observed pair")
+        for row in table:
+            ok = (isinstance(row, list) and len(row) == 6 and (row[0], row[1]) in pairs
+                  and _is_real(row[2]) and _is_index(row[3], n_states)
+                  and isinstance(row[4], bool) and _is_mask(row[5], n_actions))
+            _expect(ok, "table", row, "[state, action, reward, next state, terminated, mask]")
+            pairs.discard((row[0], row[1]))
+        _expect(not pairs, "table", sorted(pairs), "covered: pairs without an outcome")
 
     def set_state(self, state: dict) -> None:
         """Inverse of :meth:`get_state`."""
@@ -225,6 +294,29 @@ class CountsModel(_PairIndex):
                 for (s, a), outcomes in self._table.items()
             ],
         }
+
+    @classmethod
+    def check_state(cls, state: Any, n_states: int, n_actions: int) -> None:
+        """Raise ValueError naming the entry unless ``state`` fits a table of this size."""
+        pairs = cls._check_index_state(state, n_states, n_actions)
+        table = state["table"]
+        _expect(isinstance(table, list) and len(table) == len(pairs), "table", table,
+                "one row per observed pair")
+        for row in table:
+            ok = (isinstance(row, list) and len(row) == 3 and (row[0], row[1]) in pairs
+                  and isinstance(row[2], list) and row[2])
+            _expect(ok, "table", row, "[state, action, [outcomes]]")
+            seen = set()
+            for out in row[2]:
+                ok = (isinstance(out, list) and len(out) == 5 and _is_index(out[0], n_states)
+                      and isinstance(out[1], bool) and (out[0], out[1]) not in seen
+                      and _is_index(out[2], 2**62) and out[2] >= 1 and _is_real(out[3])
+                      and _is_mask(out[4], n_actions))
+                _expect(ok, "table", out,
+                        "[next state, terminated, count >= 1, mean reward, mask], distinct")
+                seen.add((out[0], out[1]))
+            pairs.discard((row[0], row[1]))
+        _expect(not pairs, "table", sorted(pairs), "covered: pairs without outcomes")
 
     def set_state(self, state: dict) -> None:
         """Inverse of :meth:`get_state`."""

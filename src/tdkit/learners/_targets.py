@@ -294,15 +294,15 @@ def greedy_max_rows(rows: np.ndarray, mask: np.ndarray | None) -> np.ndarray:
 def greedy_index_rows(rows: np.ndarray, mask: np.ndarray | None, u: np.ndarray) -> np.ndarray:
     """:func:`greedy_index` of every row (``u`` of shape (K,)); -1 for rows with NaN."""
     candidates = _masked(rows, mask, -np.inf)
-    bad = np.isnan(candidates).any(axis=1)
-    ties = candidates == candidates.max(axis=1, keepdims=True)
+    ties = candidates == candidates.max(axis=1, keepdims=True)  # a NaN max: no ties
     if mask is not None:
         ties &= mask  # an all -inf row: only allowed actions tie
     rank = ties.cumsum(axis=1)  # rank[i, j]: ties among rows[i, :j + 1]
-    pick = np.minimum((u * rank[:, -1]).astype(np.intp), rank[:, -1] - 1)
+    counts = rank[:, -1]
+    pick = np.minimum((u * counts).astype(np.intp), counts - 1)
     best = (rank > pick[:, None]).argmax(axis=1)
-    if bad.any():
-        best[bad] = -1
+    if not counts.all():
+        best[counts == 0] = -1
     return best
 
 
@@ -318,14 +318,16 @@ def epsilon_greedy_index_rows(
     rows: np.ndarray, mask: np.ndarray | None, epsilon: float, u: np.ndarray
 ) -> np.ndarray:
     """:func:`epsilon_greedy_index` of every row."""
+    if epsilon <= 0.0:
+        return greedy_index_rows(rows, mask, u)  # (u - 0) / 1 == u
+    if epsilon >= 1.0:
+        return _uniform_index_rows(mask, rows.shape[1], u)  # u / 1 == u
+    # Each row uses one of the two rescaled numbers; the other is computed and ignored.
+    greedy = greedy_index_rows(rows, mask, (u - epsilon) / (1.0 - epsilon))
     explore = u < epsilon
-    with np.errstate(divide="ignore", invalid="ignore"):
-        u_tie = np.where(explore, 0.0, (u - epsilon) / (1.0 - epsilon))
-        u_action = np.where(explore, u / epsilon, 0.0) if epsilon > 0.0 else u
-    greedy = greedy_index_rows(rows, mask, u_tie)
     if not explore.any():
         return greedy
-    uniform = _uniform_index_rows(mask, rows.shape[1], u_action)
+    uniform = _uniform_index_rows(mask, rows.shape[1], u / epsilon)
     return np.where(explore, uniform, greedy)
 
 

@@ -21,7 +21,7 @@ References
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Any, ClassVar
 
 import numpy as np
 
@@ -59,7 +59,7 @@ def trace_step(
     kind: str,
     cutoff: float,
     correction: float = 0.0,
-) -> None:
+) -> float | None:
     r"""Bump the trace of entry ``k``, move every traced value, then decay the traces.
 
     With :math:`x` the indicator of entry ``k`` and :math:`z` the traces:
@@ -92,6 +92,13 @@ def trace_step(
     cutoff : float
         Traces at or below it are dropped after decaying.
 
+    Returns
+    -------
+    float or None
+        None; or, when the update would overflow a value to inf or NaN
+        (rewards near the float limit), the offending value, and then
+        neither ``values`` nor ``traces`` was changed.
+
     Examples
     --------
     >>> import numpy as np
@@ -107,8 +114,11 @@ def trace_step(
         e = 1.0
     else:
         e = (1.0 - alpha) * e + 1.0
-    traces[k] = e
     step = alpha * (delta + correction)
+    bad = _overflow(values, traces, k, e, step, alpha * correction)
+    if bad is not None:
+        return bad  # nothing was changed
+    traces[k] = e
     dead: list[int] = []
     for j, ej in traces.items():
         values[j] += step * ej
@@ -121,6 +131,24 @@ def trace_step(
         del traces[j]
     if correction != 0.0:
         values[k] -= alpha * correction
+    return None
+
+
+def _overflow(
+    values: np.ndarray, traces: dict[int, float], k: int, e: float, step: float, shift: float
+) -> float | None:
+    """The first new value that would not be finite, or None (nothing is changed)."""
+    if step - step == 0.0:  # finite: then only huge entries can overflow
+        new_k = values[k] + step * e - shift
+        if new_k - new_k != 0.0:
+            return float(new_k)
+        for j, ej in traces.items():
+            if j != k:
+                new = values[j] + step * ej
+                if new - new != 0.0:
+                    return float(new)
+        return None
+    return step
 
 
 class TraceLearner(TabularAgent):
@@ -130,6 +158,11 @@ class TraceLearner(TabularAgent):
     override :meth:`_before_step` and :meth:`_column`; the TD error and the
     trace step are computed here, once.
     """
+
+    _saved_state: ClassVar[tuple[tuple[str, str], ...]] = (
+        ("_traces", "per_episode"), ("_q_old", "per_episode"), ("_expect", "per_episode"),
+        ("_mask_now", "per_episode"),
+    )
 
     def __init__(
         self,
@@ -208,10 +241,13 @@ class TraceLearner(TabularAgent):
         target = r if terminated else r + self.gamma * q_next
         delta = target - q_sa
         dutch = self.trace == "dutch"
-        trace_step(
+        bad = trace_step(
             self._flat, self._traces, k, delta, alpha, self.gamma * self.lam, self.trace,
             self.trace_cutoff, (q_sa - self._q_old) if dutch else 0.0,
         )
+        if bad is not None:
+            self._visits[s, col] -= 1
+            self._refuse_overflow(s, col, target, bad)
         if terminated or truncated:
             self._reset_traces()
         else:

@@ -55,7 +55,7 @@ Sutton, R. S. & Barto, A. G. (2018). Reinforcement Learning: An Introduction,
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Any, ClassVar
 
 import numpy as np
 
@@ -82,6 +82,10 @@ class _AverageReward:
     Put it first in the bases. Subclasses call :meth:`_init_average` after the
     base constructor and implement :meth:`_restart_value`.
     """
+
+    _saved_state: ClassVar[tuple[tuple[str, str], ...]] = (
+        ("average_reward", "real"), ("_restart", "held_transition"),
+    )
 
     #: (state, action, reward) of a terminating transition whose bootstrap waits for the
     #: next episode's start state, or None.
@@ -222,6 +226,10 @@ class DifferentialQLearning(_AverageReward, TabularAgent):
     """
 
     _reset_state: int = -1
+
+    _saved_state: ClassVar[tuple[tuple[str, str], ...]] = (
+        ("_reset_mask", "mask"), ("_reset_state", "state_or_minus_one"),
+    )
 
     def __init__(
         self,

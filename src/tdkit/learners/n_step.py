@@ -30,7 +30,7 @@ from __future__ import annotations
 
 from collections import deque
 from collections.abc import Sequence
-from typing import Any
+from typing import Any, ClassVar
 
 import numpy as np
 
@@ -55,6 +55,10 @@ _Tail = tuple[int, "np.ndarray | None", "int | None"]
 
 class _NStepLearner(TabularAgent):
     """Buffering, completion and flushing shared by the n-step learners."""
+
+    _saved_state: ClassVar[tuple[tuple[str, str], ...]] = (
+        ("_buffer", "per_episode"), ("_mask_now", "per_episode"), ("_tail", "per_episode"),
+    )
 
     def __init__(
         self,

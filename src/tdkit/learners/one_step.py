@@ -11,7 +11,7 @@ bootstraps as usual and the episode then ends.
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Any, ClassVar
 
 import numpy as np
 
@@ -236,6 +236,10 @@ class DoubleQLearning(TabularAgent):
     .. [2] Sutton, R. S. & Barto, A. G. (2018). Reinforcement Learning: An
        Introduction, 2nd ed., Section 6.7.
     """
+
+    _saved_state: ClassVar[tuple[tuple[str, str], ...]] = (
+        ("_q_a", "values"), ("_q_b", "values"), ("_visits_a", "counts"), ("_visits_b", "counts"),
+    )
 
     def _init_tables(self, initial_value: InitialValue) -> None:
         owner = type(self).__name__

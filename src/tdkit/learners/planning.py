@@ -89,13 +89,16 @@ class _PlanningLearner(QLearning):
     def _plan(self) -> None:
         raise NotImplementedError
 
-    # Saved by tdkit.store through these hooks (the model is not an array).
-    _extra_state_attributes: ClassVar[tuple[str, ...]] = ("_model",)
+    # Saved by tdkit.store: the model through these hooks (it is not an array).
+    _saved_state: ClassVar[tuple[tuple[str, str], ...]] = (
+        ("planning_updates_", "counter"), ("_model", "hooks"),
+    )
 
     def _get_extra_state(self) -> dict[str, Any]:
         return {"model": self._model.get_state()}
 
     def _set_extra_state(self, state: dict[str, Any]) -> None:
+        self._model.check_state(state["model"], self.n_states, self.n_actions)
         self._model.set_state(state["model"])
 
     @property
@@ -206,6 +209,10 @@ class DynaQPlus(DynaQ):
     >>> agent.kappa
     0.1
     """
+
+    _saved_state: ClassVar[tuple[tuple[str, str], ...]] = (
+        ("_last_tried", "counts<=steps_"), ("_known_masks", "mask_map"),
+    )
 
     def __init__(
         self,
@@ -401,7 +408,9 @@ class PrioritizedSweeping(_PlanningLearner):
             self.planning_updates_ += 1
             self._queue_predecessors(s)
 
-    _extra_state_attributes: ClassVar[tuple[str, ...]] = ("_model", "_heap", "_queued", "_pushes")
+    _saved_state: ClassVar[tuple[tuple[str, str], ...]] = (
+        ("_heap", "hooks"), ("_queued", "hooks"), ("_pushes", "hooks"),
+    )
 
     def _get_extra_state(self) -> dict[str, Any]:
         return {
@@ -412,6 +421,7 @@ class PrioritizedSweeping(_PlanningLearner):
         }
 
     def _set_extra_state(self, state: dict[str, Any]) -> None:
+        _check_queue(state, self.n_states, self.n_actions)
         super()._set_extra_state(state)
         self._heap = [(float(p), int(k), int(s), int(a)) for p, k, s, a in state["heap"]]
         heapq.heapify(self._heap)
@@ -422,3 +432,32 @@ class PrioritizedSweeping(_PlanningLearner):
     def queue_size(self) -> int:
         """Number of pairs waiting in the priority queue."""
         return len(self._queued)
+
+
+def _check_queue(state: Any, n_states: int, n_actions: int) -> None:
+    """Raise ValueError naming the entry unless the saved priority queue fits the table."""
+
+    def pair_ok(s: Any, a: Any) -> bool:
+        return all(isinstance(x, int) and not isinstance(x, bool) for x in (s, a)) and (
+            0 <= s < n_states and 0 <= a < n_actions)
+
+    def priority_ok(p: Any) -> bool:
+        return isinstance(p, (int, float)) and not isinstance(p, bool) and math.isfinite(p) and (
+            p > 0)
+
+    order = state.get("order")
+    if not (isinstance(order, int) and not isinstance(order, bool) and order >= 0):
+        raise ValueError(f"order: {order!r:.80} is not an integer >= 0.")
+    for entry in state.get("heap", None) or []:
+        if not (isinstance(entry, list) and len(entry) == 4
+                and isinstance(entry[0], (int, float)) and priority_ok(-entry[0])
+                and isinstance(entry[1], int) and not isinstance(entry[1], bool)
+                and 0 <= entry[1] < order
+                and pair_ok(entry[2], entry[3])):
+            raise ValueError(f"heap: {entry!r:.80} is not [-priority, order, state, action].")
+    for entry in state.get("queued", None) or []:
+        if not (isinstance(entry, list) and len(entry) == 3 and pair_ok(entry[0], entry[1])
+                and priority_ok(entry[2])):
+            raise ValueError(f"queued: {entry!r:.80} is not [state, action, priority].")
+    if not (isinstance(state.get("heap"), list) and isinstance(state.get("queued"), list)):
+        raise ValueError("heap and queued must be lists.")

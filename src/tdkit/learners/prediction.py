@@ -45,6 +45,9 @@ _ROW_ATOL = 1e-8
 class _PolicyLearner(TabularAgent):
     """Acting with a given policy and a state-value table (shared by TD0 and TDLambda)."""
 
+    _saved_state: ClassVar[tuple[tuple[str, str], ...]] = (
+        ("_q", "state_values"), ("_visits", "state_counts"),
+    )
     _keyword_hints: ClassVar[dict[str, str]] = {
         "exploration": "prediction learners do not explore: they act with the given policy "
         "(pass policy=..., an (n_states, n_actions) probability table or a callable).",

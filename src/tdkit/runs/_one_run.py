@@ -28,8 +28,8 @@ from typing import Any, NamedTuple
 import numpy as np
 
 from .._errors import InvalidParameterError
-from ..history import History
-from ..loop import evaluate, train
+from .history import History
+from .training import evaluate, train
 
 __all__ = [
     "RunSeeds",

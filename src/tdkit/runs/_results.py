@@ -16,8 +16,8 @@ import numpy as np
 
 from .._errors import InvalidParameterError, TdkitError
 from .._validation import require_in_range, require_positive_int
-from ..history import History
 from ..stats import ConfidenceInterval, ScoreSummary, summarize_scores
+from .history import History
 
 __all__ = [
     "METRICS",

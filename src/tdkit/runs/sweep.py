@@ -49,7 +49,6 @@ import numpy as np
 from .._errors import InvalidParameterError
 from .._progress import progress_bar
 from .._validation import require_positive_int
-from ..history import History
 from ._dispatch import RunFailure, RunOutcome, dispatch, reissue_warnings
 from ._factories import AgentFactory
 from ._one_run import (
@@ -69,6 +68,7 @@ from ._results import (
     SweepSummary,
     setting_label,
 )
+from .history import History
 
 __all__ = [
     # running

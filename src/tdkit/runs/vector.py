@@ -20,6 +20,7 @@ truncated episode bootstraps from the state it really ended in.
 from __future__ import annotations
 
 import math
+import time
 from collections.abc import Sequence
 from types import SimpleNamespace
 from typing import Any
@@ -29,9 +30,9 @@ import numpy as np
 from gymnasium.vector.utils import iterate
 
 from .._errors import InvalidParameterError
-from ..history import History
 from .episode import info_mask
 from .fit import check_agent_fits
+from .history import History
 from .seeds import episode_seed, root_sequence
 
 __all__ = ["agent_roots", "train_vector"]
@@ -84,6 +85,7 @@ class _Lane:
         "length",
         "mask",
         "obs",
+        "started",
         "td_max",
         "td_n",
         "td_sum",
@@ -107,11 +109,13 @@ class _Lane:
         self.td_n = 0
         self.td_sum = 0.0
         self.td_max = 0.0
+        self.started = time.perf_counter()
 
     def record(self, end: str) -> None:
         self.history.add_episode(
             ret=float(self.total), length=self.length, end=end, td_count=self.td_n,
             td_abs_sum=self.td_sum, td_abs_max=self.td_max,
+            seconds=time.perf_counter() - self.started,
         )
         self.total_steps += self.length
         self.episode += 1

@@ -16,10 +16,11 @@ See ``docs/verify.md`` for a pytest suite a team can copy.
 
 from __future__ import annotations
 
+from . import probes
 from ._report import CheckResult, VerificationReport
 from ._runner import CHECK_NAMES, assert_agent, run_check, verify_agent
 from .differential import Divergence, RecordedTransition, compare_updates, record_transitions
-from .factories import AgentFactory, agent_factory
+from .factories import AgentFactory, agent_factory, recommended_settings
 from .performance import AgentScores, PerformanceComparison, compare_performance
 
 __all__ = [
@@ -42,4 +43,7 @@ __all__ = [
     # factories
     "agent_factory",
     "AgentFactory",
+    "recommended_settings",
+    # the probe problems (a module)
+    "probes",
 ]

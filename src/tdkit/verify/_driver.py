@@ -22,6 +22,7 @@ from ..runs import (
     check_update_result,
     describe_exception,
     episode_seed,
+    root_sequence,
     run_episode,
 )
 
@@ -180,10 +181,11 @@ def run_episodes(
     env: Any,
     *,
     episodes: int,
-    seed: int,
+    seed: int | np.random.SeedSequence,
     watcher: Watcher | None = None,
     max_steps: int = 10_000,
     max_episode_steps: int | None = None,
+    cut_after: int | None = None,
 ) -> RunTrace:
     """Train ``agent`` for ``episodes`` episodes through tdkit's one episode driver.
 
@@ -194,18 +196,22 @@ def run_episodes(
     reproduced by ``tdkit.train(make_agent(env, seed), env, episodes=...,
     seed=seed, max_episode_steps=...)``. An episode longer than ``max_steps``
     is an :class:`AgentFault` (the probe environments end every episode well
-    before).
+    before), unless ``cut_after`` is given: then every episode stops after
+    ``cut_after`` steps at most, as ``tdkit.train(..., episodes=1,
+    steps=cut_after)`` stops it (the driver settles it with the agent's
+    ``end_episode()``).
     """
     watch = watcher or Watcher()
-    root = np.random.SeedSequence(seed)
+    root = root_sequence(seed, owner="run_episodes")
+    budget = max_steps if cut_after is None else cut_after
     trace = RunTrace()
     for episode in range(episodes):
         result = run_episode(
             agent, env, env_seed=episode_seed(root, episode), checked=True,
             hooks=_Tap(watch, trace, episode), max_episode_steps=max_episode_steps,
-            step_budget=max_steps, episode_index=episode,
+            step_budget=budget, episode_index=episode,
         )
-        if result.end == "unfinished":
+        if result.end == "unfinished" and cut_after is None:
             raise AgentFault(
                 f"episode did not end within {max_steps} steps of a probe environment that ends "
                 "every episode sooner",

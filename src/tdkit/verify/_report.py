@@ -35,6 +35,10 @@ class CheckResult:
     where : str or None
         Where in that run the outcome was decided (``"episode 12, step 1"``,
         ``"after 300 episodes"``).
+    rebuild : str or None
+        Python code that rebuilds the deciding run through ``tdkit.train``
+        (``make_agent`` stands for the factory verified; the environment comes
+        from :mod:`tdkit.verify.probes` or :mod:`tdkit.envs.problems`).
     """
 
     name: str
@@ -43,6 +47,7 @@ class CheckResult:
     seed: int | None = None
     env: str | None = None
     where: str | None = None
+    rebuild: str | None = None
 
     @property
     def passed(self) -> bool:
@@ -61,14 +66,23 @@ class CheckResult:
 
     @property
     def reproduce(self) -> str:
-        """How to reproduce the deciding run (seed, environment, step), or ``""``."""
+        """How to reproduce the deciding run, or ``""``.
+
+        The code of :attr:`rebuild` when the check set it, followed by where
+        the outcome was decided; otherwise seed, environment and place.
+        """
+        place = ""
+        if self.where is not None:
+            place = self.where if self.where.startswith("after") else f"at {self.where}"
+        if self.rebuild is not None:
+            return self.rebuild + (f"  # decided {place}" if place else "")
         parts = []
         if self.seed is not None:
             parts.append(f"seed={self.seed}")
         if self.env is not None:
             parts.append(f"env={self.env}")
-        if self.where is not None:
-            parts.append(f"at {self.where}")
+        if place:
+            parts.append(place)
         return ", ".join(parts)
 
     def __str__(self) -> str:

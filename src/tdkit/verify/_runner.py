@@ -8,9 +8,9 @@ from typing import Any
 
 from .._errors import InvalidParameterError
 from ._driver import AgentFault, agent_kind, build_agent
-from ._probes import discount_probe
 from ._report import SKIPPED, CheckResult, VerificationReport
 from .checks import CHECKS, LEVELS, Context, check_name, check_protocol
+from .probes import discount_probe
 
 __all__ = ["CHECK_NAMES", "assert_agent", "run_check", "verify_agent"]
 

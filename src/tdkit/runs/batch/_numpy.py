@@ -4,9 +4,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..envs._successors import sample_slots
-from ..learners import _targets
-from ..schedules import Schedule
+from ...envs._successors import sample_slots
+from ...learners import _targets
+from ...schedules import Schedule
 from ._result import BatchResult, split_episodes
 from ._setup import Setup, schedule_values, step_size_kind, uniform_blocks
 
@@ -45,12 +45,20 @@ class _StepSizes:
         return values[inverse.reshape(counts.shape)]
 
 
-def _nan_error(rows: np.ndarray, choice: np.ndarray) -> FloatingPointError:
-    bad = int(np.flatnonzero(choice < 0)[0])
-    return FloatingPointError(
-        f"greedy choice is undefined for learner {bad}: its action values "
-        f"contain NaN ({rows[bad]!r}). Check rewards and step sizes for overflow."
-    )
+def _raise_on_nan(q: np.ndarray) -> None:
+    """Raise if a learner's values hold NaN (checked once per block of steps).
+
+    A NaN makes greedy undefined; until the end of the block the choices of
+    that learner are -1 (see :mod:`tdkit.learners._targets`), its run is
+    meaningless and is discarded by this error.
+    """
+    bad = np.isnan(q).any(axis=(0, 2, 3))
+    if bad.any():
+        k = int(np.flatnonzero(bad)[0])
+        raise FloatingPointError(
+            f"greedy choice is undefined for learner {k}: its action values contain NaN. "
+            "Check rewards and step sizes for overflow."
+        )
 
 
 def run_numpy(setup: Setup, q: np.ndarray, rng: np.random.Generator, steps: int) -> BatchResult:
@@ -106,18 +114,17 @@ def run_numpy(setup: Setup, q: np.ndarray, rng: np.random.Generator, steps: int)
 
     for t0, block in uniform_blocks(rng, steps, learner, K):
         n = block.shape[1]
-        par = schedule_values(setup.parameter, t0, n + 1)  # behaviour at t, targets at t + 1
-        alphas = schedule_values(setup.step_size, t0 + 1, n) if by_step else None
+        block = np.ascontiguousarray(block.transpose(1, 2, 0))  # (step, slot, learner)
+        par = schedule_values(setup.parameter, t0, n + 1).tolist()  # behaviour t, targets t + 1
+        alphas = schedule_values(setup.step_size, t0 + 1, n).tolist() if by_step else None
         for i in range(n):
             t = t0 + i
-            u = block[:, i, :].T  # u[slot]: one number per learner
+            u = block[i]  # u[slot]: one number per learner
             # -- act
             here = row_base + state
             rows = behaviour_rows[here]
             m = None if mask is None else mask[state]
             chosen = choose(rows, m, par[i], u[2])
-            if (chosen < 0).any():
-                raise _nan_error(rows, chosen)
             action = np.where(fresh, chosen, action) if sarsa else chosen
             # -- environment
             outcome = state * A + action
@@ -142,8 +149,6 @@ def run_numpy(setup: Setup, q: np.ndarray, rng: np.random.Generator, steps: int)
                 next_rows = q_rows[row_base + s2]
                 if sarsa:
                     next_action = choose(next_rows, m2, par[i + 1], u[3])
-                    if (next_action < 0).any():
-                        raise _nan_error(next_rows, next_action)
                     boot = next_rows[learners, next_action]  # sampled_value, row by row
                 elif expected and softmax:
                     boot = _targets.expected_softmax_rows(next_rows, m2, par[i + 1])
@@ -181,6 +186,7 @@ def run_numpy(setup: Setup, q: np.ndarray, rng: np.random.Generator, steps: int)
                 s2 = s2.copy()
                 s2[ids] = start_states(u[1][ids])
             state = s2
+        _raise_on_nan(q)
 
     return BatchResult(
         learner=learner,

@@ -23,23 +23,25 @@ from typing import Any
 
 import numpy as np
 
-from .._errors import InvalidParameterError
-from ..envs._successors import SuccessorTables, successor_tables
-from ..envs.finite import FiniteMDP
-from ..exploration import EpsilonGreedy, Exploration, Softmax, as_exploration
-from ..schedules import Constant, Linear, Schedule, VisitCount
-from ..tables import initial_values
+from ..._errors import InvalidParameterError
+from ...envs._successors import SuccessorTables, successor_tables
+from ...envs.finite import FiniteMDP
+from ...exploration import EpsilonGreedy, Exploration, Softmax, as_exploration
+from ...schedules import Constant, Linear, Schedule, VisitCount
+from ...tables import initial_values
 
 __all__ = [
     "LEARNERS",
     "N_UNIFORM",
     "Setup",
-    "check_exploration",
-    "check_learner",
-    "check_masks",
-    "check_mdp",
+    "build_setup",
     "initial_tables",
+    "require_exploration",
+    "require_learner",
+    "require_masks",
+    "require_mdp",
     "schedule_values",
+    "step_size_kind",
     "uniform_blocks",
 ]
 
@@ -87,7 +89,7 @@ class Setup:
 
 
 # --------------------------------------------------------------------------- checks
-def check_learner(learner: Any) -> str:
+def require_learner(learner: Any) -> str:
     if isinstance(learner, str) and learner in LEARNERS:
         return learner
     hint = ""
@@ -100,7 +102,7 @@ def check_learner(learner: Any) -> str:
     )
 
 
-def check_exploration(exploration: Any) -> tuple[Exploration, Schedule]:
+def require_exploration(exploration: Any) -> tuple[Exploration, Schedule]:
     """The rule and its schedule by step (ε or τ)."""
     rule = as_exploration(exploration, owner="train_batch")
     if isinstance(rule, EpsilonGreedy):
@@ -115,7 +117,7 @@ def check_exploration(exploration: Any) -> tuple[Exploration, Schedule]:
     )
 
 
-def check_mdp(mdp: Any) -> FiniteMDP:
+def require_mdp(mdp: Any) -> FiniteMDP:
     if not isinstance(mdp, FiniteMDP):
         raise InvalidParameterError(
             f"train_batch: mdp must be a tdkit.FiniteMDP; got {type(mdp).__name__} "
@@ -125,7 +127,7 @@ def check_mdp(mdp: Any) -> FiniteMDP:
     return mdp
 
 
-def check_masks(
+def require_masks(
     masks: Any, mdp: FiniteMDP
 ) -> tuple[np.ndarray | None, np.ndarray, np.ndarray]:
     """``(mask or None, allowed, n_allowed)`` from ``masks`` (or the model's own masks)."""
@@ -186,8 +188,8 @@ def build_setup(
     mdp: FiniteMDP, learner: str, *, exploration: Any, step_size: Schedule, masks: Any,
     gamma: float, max_episode_steps: int | None,
 ) -> Setup:
-    rule, parameter = check_exploration(exploration)
-    mask, allowed, n_allowed = check_masks(masks, mdp)
+    rule, parameter = require_exploration(exploration)
+    mask, allowed, n_allowed = require_masks(masks, mdp)
     return Setup(
         learner=learner, model=successor_tables(mdp), mask=mask, allowed=allowed,
         n_allowed=n_allowed, exploration=rule, parameter=parameter, step_size=step_size,

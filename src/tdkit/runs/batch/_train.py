@@ -9,20 +9,20 @@ from typing import Any
 import numpy as np
 from numpy.typing import ArrayLike
 
-from .._errors import InvalidParameterError
-from .._seeding import SeedLike, as_generator
-from .._validation import require_in_range, require_positive_int
-from ..envs.finite import FiniteMDP
-from ..exploration import EpsilonGreedy, Softmax
-from ..schedules import Schedule, as_schedule
+from ..._errors import InvalidParameterError
+from ..._seeding import SeedLike, as_generator
+from ..._validation import require_in_range, require_positive_int
+from ...envs.finite import FiniteMDP
+from ...exploration import EpsilonGreedy, Softmax
+from ...schedules import Schedule, as_schedule
 from ._numpy import run_numpy
 from ._result import BatchResult
 from ._setup import (
     Setup,
     build_setup,
-    check_learner,
-    check_mdp,
     initial_tables,
+    require_learner,
+    require_mdp,
     step_size_kind,
 )
 
@@ -197,8 +197,8 @@ def train_batch(
     512 learners its length had median 598 and maximum 4085 steps.)
     """
     owner = "train_batch"
-    mdp = check_mdp(mdp)
-    learner = check_learner(learner)
+    mdp = require_mdp(mdp)
+    learner = require_learner(learner)
     n_learners = require_positive_int(owner, "n_learners", n_learners)
     steps = require_positive_int(owner, "steps", steps)
     schedule = as_schedule(

@@ -23,12 +23,12 @@ from typing import Any
 import numba
 import numpy as np
 
-from ..envs import _successors
-from ..learners import _targets
+from ...envs import _successors
+from ...learners import _targets
 from ._result import BatchResult, split_episodes
 from ._setup import LEARNERS, Setup, schedule_values, step_size_kind, uniform_blocks
 
-__all__ = ["run_compiled", "supports"]
+__all__ = ["run_compiled"]
 
 _CACHE = True
 """Keep compiled code in numba's on-disk cache (``__pycache__``).
@@ -197,11 +197,6 @@ def _make_kernel(stamp: int) -> Callable[..., int]:
 
 
 _run_chunk = _make_kernel(_STAMP)
-
-
-def supports(setup: Setup) -> bool:
-    """Whether the kernel runs this configuration (user-defined per-visit step sizes do not)."""
-    return step_size_kind(setup.step_size) != "per_visit"
 
 
 def run_compiled(

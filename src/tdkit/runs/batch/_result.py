@@ -6,7 +6,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..dp import greedy_policy
+from ...dp import greedy_policy
 
 __all__ = ["BatchResult", "split_episodes"]
 

@@ -1,0 +1,246 @@
+"""Measure the verifier's error rates: false alarms on correct agents, detections of bugs.
+
+Runs ``tdkit.verify.verify_agent`` on every tdkit learner (with its defaults
+and with the settings docs/verify.md recommends) and on the deliberately
+broken agents of tests/test_verify_mutants.py, over many seeds, and prints
+one table: for each learner and check, how often a correct agent failed it
+(with the 95% upper confidence bound of the false-alarm rate,
+Clopper-Pearson; 3/N for 0 of N), and for each mutant how often the check
+that names its bug caught it.
+
+Usage::
+
+    python benchmarks/calibrate_verify.py --level quick --seeds 1-300 --jobs 2
+    python benchmarks/calibrate_verify.py --learners QLearning,Sarsa --seeds 1-20
+    python benchmarks/calibrate_verify.py --mutants-only --seeds 1-50 --named-check-only
+    python benchmarks/calibrate_verify.py --shard 0/4 --out part0.jsonl   # a quarter
+    python benchmarks/calibrate_verify.py --summarize part*.jsonl         # the table
+    python benchmarks/calibrate_verify.py --smoke                         # seconds
+
+Run it from the repository root with ``PYTHONPATH=src``. Every run is one
+line of JSON in ``--out`` (appended), so pieces run on different days or
+machines combine with ``--summarize``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib.util
+import json
+import pathlib
+import sys
+import time
+from collections import defaultdict
+from concurrent.futures import ProcessPoolExecutor
+
+import numpy as np
+
+ROOT = pathlib.Path(__file__).resolve().parent.parent
+
+CONTROL = [
+    "QLearning", "Sarsa", "ExpectedSarsa", "DoubleQLearning", "NStepSarsa", "TreeBackup",
+    "SarsaLambda", "WatkinsQLambda", "DynaQ", "DynaQPlus", "PrioritizedSweeping",
+]
+PREDICTION = ["TD0", "TDLambda"]
+VARIANTS = ("defaults", "recommended")
+
+
+def _mutants_module():
+    spec = importlib.util.spec_from_file_location(
+        "_verify_mutants", ROOT / "tests" / "test_verify_mutants.py"
+    )
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+def make_factory(name: str, variant: str):
+    """The factory of a learner (``variant`` defaults or recommended) or of a mutant."""
+    import tdkit
+    import tdkit.learners
+
+    if variant == "mutant":
+        return _mutants_module().MUTANT_FACTORIES[name]
+    cls = getattr(tdkit.learners, name)
+    prediction = name in PREDICTION
+
+    def make(env, seed):
+        kwargs = {"seed": seed}
+        if prediction:
+            n, m = env.observation_space.n, env.action_space.n
+            kwargs["policy"] = np.full((n, m), 1.0 / m)
+        if variant == "recommended":
+            kwargs.update(tdkit.verify.recommended_settings(name))
+        return cls.for_env(env, **kwargs)
+
+    make.__name__ = f"make_{name}_{variant}"
+    return make
+
+
+def run_one(job: tuple[str, str, str, int]) -> dict:
+    name, variant, level, seed = job[:4]
+    from tdkit.verify import run_check, verify_agent
+
+    started = time.perf_counter()
+    if len(job) > 4:  # a planted bug, only the check that names it (run_check)
+        result = run_check(make_factory(name, variant), job[4], level=level, seed=seed)
+        return {
+            "learner": name, "variant": variant, "level": level, "seed": seed,
+            "seconds": round(time.perf_counter() - started, 2),
+            "checks": {result.name: result.status},
+            "messages": {result.name: result.message} if result.failed else {},
+        }
+    report = verify_agent(make_factory(name, variant), level=level, seed=seed)
+    return {
+        "learner": name, "variant": variant, "level": level, "seed": seed,
+        "seconds": round(time.perf_counter() - started, 2),
+        "checks": {c.name: c.status for c in report},
+        "messages": {c.name: c.message for c in report if c.failed},
+    }
+
+
+def parse_seeds(text: str) -> list[int]:
+    seeds: list[int] = []
+    for part in text.split(","):
+        if "-" in part:
+            low, high = part.split("-")
+            seeds.extend(range(int(low), int(high) + 1))
+        else:
+            seeds.append(int(part))
+    return seeds
+
+
+def upper_bound(failures: int, runs: int) -> float:
+    """One-sided 95% Clopper-Pearson upper bound of a rate seen as failures / runs."""
+    if runs == 0:
+        return float("nan")
+    if failures == runs:
+        return 1.0
+    from scipy.stats import beta
+
+    return float(beta.ppf(0.95, failures + 1, runs - failures))
+
+
+def summarize(records: list[dict]) -> str:
+    mutants = _mutants_module().MUTANT_CHECKS
+    lines = []
+    correct = [r for r in records if r["variant"] != "mutant"]
+    broken = [r for r in records if r["variant"] == "mutant"]
+    if correct:
+        lines.append("False alarms on correct agents (failed / runs; 95% upper bound of the rate)")
+        groups = defaultdict(list)
+        for r in correct:
+            groups[(r["level"], r["learner"], r["variant"])].append(r)
+        checks = sorted({c for r in correct for c in r["checks"]})
+        lines.append("| level | learner | settings | runs | any check | per check (failed > 0) "
+                     "| s/run |")
+        lines.append("|---|---|---|---|---|---|---|")
+        total = defaultdict(lambda: [0, 0])
+        for (level, learner, variant), runs in sorted(groups.items()):
+            n = len(runs)
+            any_fail = sum(any(s == "failed" for s in r["checks"].values()) for r in runs)
+            per = []
+            for c in checks:
+                k = sum(r["checks"].get(c) == "failed" for r in runs)
+                total[(level, c)][0] += k
+                total[(level, c)][1] += sum(r["checks"].get(c) in ("passed", "failed")
+                                            for r in runs)
+                if k:
+                    per.append(f"{c} {k}/{n}")
+            secs = np.mean([r["seconds"] for r in runs])
+            lines.append(
+                f"| {level} | {learner} | {variant} | {n} | {any_fail}/{n} "
+                f"(≤ {upper_bound(any_fail, n):.3f}) | {', '.join(per) or '-'} | {secs:.1f} |"
+            )
+        lines.append("")
+        lines.append("Per check, all correct agents pooled (failed / runs in which the check "
+                     "ran, skips excluded; 95% upper bound)")
+        lines.append("| level | check | failed / runs | upper bound |")
+        lines.append("|---|---|---|---|")
+        for (level, c), (k, n) in sorted(total.items()):
+            lines.append(f"| {level} | {c} | {k}/{n} | {upper_bound(k, n):.4f} |")
+    if broken:
+        lines.append("")
+        lines.append("Detections of planted bugs (caught by the check that names it / runs)")
+        lines.append("| mutant | check | caught / runs | other checks failed (full reports) |")
+        lines.append("|---|---|---|---|")
+        groups = defaultdict(list)
+        for r in broken:
+            groups[(r["level"], r["learner"])].append(r)
+        for (level, name), runs in sorted(groups.items()):
+            check = mutants[name]
+            runs = [r for r in runs if check in r["checks"]]
+            k = sum(r["checks"].get(check) == "failed" for r in runs)
+            others = sorted({c for r in runs for c, s in r["checks"].items()
+                             if s == "failed" and c != check})
+            lines.append(f"| {name} ({level}) | {check} | {k}/{len(runs)} | "
+                         f"{', '.join(others) or '-'} |")
+    return "\n".join(lines)
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    parser.add_argument("--level", choices=["quick", "full"], default="quick")
+    parser.add_argument("--seeds", default="1-300", help="e.g. 1-300 or 1,2,5-9")
+    parser.add_argument("--learners", default=",".join(CONTROL + PREDICTION))
+    parser.add_argument("--variants", default=",".join(VARIANTS))
+    parser.add_argument("--mutants", default="all", help="names, 'all' or 'none'")
+    parser.add_argument("--mutants-only", action="store_true")
+    parser.add_argument("--named-check-only", action="store_true",
+                        help="for planted bugs, run only the check that names the bug")
+    parser.add_argument("--jobs", type=int, default=1)
+    parser.add_argument("--shard", default="0/1", help="i/n: run every n-th job from i")
+    parser.add_argument("--out", default=None, help="append one JSON line per run")
+    parser.add_argument("--summarize", nargs="*", default=None, help="JSONL files to tabulate")
+    parser.add_argument("--smoke", action="store_true", help="1 seed, 2 learners, 2 mutants")
+    args = parser.parse_args(argv)
+    if args.summarize is not None:
+        records = [json.loads(line) for f in args.summarize
+                   for line in pathlib.Path(f).read_text().splitlines() if line.strip()]
+        print(summarize(records))
+        return 0
+    seeds = parse_seeds(args.seeds)
+    learners = [] if args.mutants_only else args.learners.split(",")
+    variants = args.variants.split(",")
+    all_mutants = list(_mutants_module().MUTANT_CHECKS)
+    mutants = (all_mutants if args.mutants == "all" else
+               [] if args.mutants == "none" else args.mutants.split(","))
+    if args.smoke:
+        seeds, learners, variants, mutants = [1], ["QLearning", "TD0"], ["defaults"], \
+            all_mutants[:2]
+    jobs = [(n, v, args.level, s) for s in seeds for n in learners for v in variants]
+    named = _mutants_module().MUTANT_CHECKS
+    jobs += [(m, "mutant", args.level, s, *([named[m]] if args.named_check_only else []))
+             for s in seeds for m in mutants]
+    index, count = (int(x) for x in args.shard.split("/"))
+    jobs = jobs[index::count]
+    records = []
+    out = open(args.out, "a") if args.out else None
+    started = time.perf_counter()
+    try:
+        if args.jobs > 1:
+            with ProcessPoolExecutor(args.jobs) as pool:
+                results = pool.map(run_one, jobs, chunksize=1)
+                for record in results:
+                    records.append(record)
+                    if out:
+                        out.write(json.dumps(record) + "\n")
+                        out.flush()
+        else:
+            for job in jobs:
+                record = run_one(job)
+                records.append(record)
+                if out:
+                    out.write(json.dumps(record) + "\n")
+                    out.flush()
+    finally:
+        if out:
+            out.close()
+    print(summarize(records))
+    print(f"\n{len(records)} runs in {time.perf_counter() - started:.0f} s "
+          f"(level {args.level}, jobs {args.jobs})")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
