@@ -8,6 +8,19 @@ is lost, and the week's profit is the reward::
     profit = price * sold - unit_cost * q - order_fee * [q > 0]
              - holding_cost * left_over - lost_sale_penalty * (demand - sold)
 
+With ``backlog=True`` unmet demand waits instead: the stock goes negative
+(down to ``-max_backlog``), customers pay when they order, and every unit
+still owed at the end of a week costs ``backorder_cost``. With ``y = stock +
+q`` and ``taken = min(demand, y + max_backlog)``::
+
+    profit = price * taken - unit_cost * q - order_fee * [q > 0]
+             - holding_cost * max(y - taken, 0) - backorder_cost * max(taken - y, 0)
+             - lost_sale_penalty * (demand - taken)
+
+Demand beyond the backlog limit is lost (the stock stops at
+``-max_backlog``); after an order up to ``y >= 0`` that needs a week's
+demand above ``max_backlog``, below one week in 10^9 at the defaults.
+
 Demand is Poisson with mean ``mean_demand``. The business does not end, so an
 episode is a planning horizon of ``weeks`` weeks that ends by a *time limit*
 (``truncated``), never by a terminal state: learners must bootstrap there.
@@ -25,7 +38,9 @@ from typing import Any, ClassVar
 import gymnasium as gym
 import numpy as np
 
+from .._errors import InvalidParameterError
 from .._validation import require_in_range, require_positive_int, require_real
+from .finite import FiniteMDP
 
 __all__ = ["InventoryEnv"]
 
@@ -47,11 +62,29 @@ class InventoryEnv(gym.Env):
     gamma : float, default 0.99
         The discount the scenario is meant to be solved with (exposed as
         ``env.unwrapped.gamma``; the env itself does not discount).
+    backlog : bool, default False
+        Unmet demand waits (negative stock) instead of being lost.
+    max_backlog : int, default 20
+        With ``backlog``: the lowest stock level is ``-max_backlog``.
+    backorder_cost : float, default 2.0
+        With ``backlog``: money per unit owed at the end of a week.
 
     Notes
     -----
-    ``info["action_mask"]`` marks the order sizes that fit on the shelf.
-    :meth:`transition_model` gives the exact model for dynamic programming.
+    Observations are stock levels, ``0..capacity`` (``-max_backlog..capacity``
+    with ``backlog``; ``observation_space.start`` is the lowest); actions are
+    order sizes ``0..capacity - lowest``. ``info["action_mask"]`` marks the
+    orders that fit on the shelf. :meth:`transition_model` and
+    :meth:`finite_mdp` give the exact model for dynamic programming, with
+    state ``i`` the stock level ``stock_levels[i]``.
+
+    Examples
+    --------
+    >>> env = InventoryEnv(capacity=4, backlog=True, max_backlog=3)
+    >>> env.stock_levels.tolist()
+    [-3, -2, -1, 0, 1, 2, 3, 4]
+    >>> env.action_mask(2).tolist()        # from stock 2, orders 0..2 fit a shelf of 4
+    [True, True, True, False, False, False, False, False]
     """
 
     metadata: ClassVar[dict[str, Any]] = {"render_modes": []}
@@ -68,6 +101,9 @@ class InventoryEnv(gym.Env):
         lost_sale_penalty: float = 2.0,
         weeks: int = 52,
         gamma: float = 0.99,
+        backlog: bool = False,
+        max_backlog: int = 20,
+        backorder_cost: float = 2.0,
     ) -> None:
         self.capacity = require_positive_int("InventoryEnv", "capacity", capacity)
         self.mean_demand = require_in_range(
@@ -82,23 +118,46 @@ class InventoryEnv(gym.Env):
         )
         self.weeks = require_positive_int("InventoryEnv", "weeks", weeks)
         self.gamma = require_in_range("InventoryEnv", "gamma", gamma, 0.0, 1.0)
-        self.observation_space = gym.spaces.Discrete(self.capacity + 1)
-        self.action_space = gym.spaces.Discrete(self.capacity + 1)
+        if not isinstance(backlog, (bool, np.bool_)):
+            raise InvalidParameterError(
+                f"InventoryEnv: backlog must be True (unmet demand waits) or False (it is "
+                f"lost); got {backlog!r}."
+            )
+        self.backlog = bool(backlog)
+        self.max_backlog = require_positive_int("InventoryEnv", "max_backlog", max_backlog)
+        self.backorder_cost = require_real("InventoryEnv", "backorder_cost", backorder_cost)
+        self._lowest = -self.max_backlog if self.backlog else 0
+        n = self.capacity - self._lowest + 1
+        self.observation_space = gym.spaces.Discrete(n, start=self._lowest)
+        self.action_space = gym.spaces.Discrete(n)
         self._stock = 0
         self._week = 0
 
+    @property
+    def stock_levels(self) -> np.ndarray:
+        """The stock level of each model state: ``lowest..capacity``."""
+        return np.arange(self._lowest, self.capacity + 1)
+
     def action_mask(self, stock: int) -> np.ndarray:
         """Orders that fit: ``stock + q <= capacity``."""
-        return np.arange(self.capacity + 1) <= self.capacity - stock
+        return np.arange(self.capacity - self._lowest + 1) <= self.capacity - stock
 
     def _profit(self, stock: int, order: int, demand: int) -> tuple[int, float]:
-        available = stock + order
-        sold = min(demand, available)
-        left = available - sold
+        """Next stock level and the week's profit (the one definition of the dynamics)."""
+        level = stock + order
+        base = -self.unit_cost * order - (self.order_fee if order > 0 else 0.0)
+        if self.backlog:
+            taken = min(demand, level - self._lowest)  # sold now or owed; the rest is lost
+            left = level - taken
+            return left, (
+                base + self.price * taken - self.holding_cost * max(left, 0)
+                - self.backorder_cost * max(-left, 0)
+                - self.lost_sale_penalty * (demand - taken)
+            )
+        sold = min(demand, level)
+        left = level - sold
         profit = (
-            self.price * sold
-            - self.unit_cost * order
-            - (self.order_fee if order > 0 else 0.0)
+            base + self.price * sold
             - self.holding_cost * left
             - self.lost_sale_penalty * (demand - sold)
         )
@@ -109,6 +168,14 @@ class InventoryEnv(gym.Env):
     ) -> tuple[int, dict[str, Any]]:
         super().reset(seed=seed)
         start = None if options is None else options.get("stock")
+        if start is not None and (
+            isinstance(start, bool) or not isinstance(start, (int, np.integer))
+            or not self._lowest <= start <= self.capacity
+        ):
+            raise InvalidParameterError(
+                f"InventoryEnv.reset: options['stock'] must be an int in "
+                f"{self._lowest}..{self.capacity}; got {start!r}."
+            )
         self._stock = (
             int(self.np_random.integers(self.capacity + 1)) if start is None else int(start)
         )
@@ -129,43 +196,83 @@ class InventoryEnv(gym.Env):
         info = {"action_mask": self.action_mask(self._stock), "demand": demand}
         return self._stock, float(profit), False, self._week >= self.weeks, info
 
+    def _demand(self, top: int) -> tuple[np.ndarray, float, float]:
+        """Poisson pmf on ``0..top - 1``, the tail mass ``P(D >= top)`` and ``E[D; D >= top]``."""
+        lam = self.mean_demand
+        d = np.arange(top)
+        log_pmf = -lam + d * math.log(lam) - np.array([math.lgamma(k + 1) for k in d])
+        pmf = np.exp(log_pmf)
+        tail = max(0.0, 1.0 - float(pmf.sum()))
+        tail_mean = max(0.0, lam - float(d @ pmf))  # E[D; D >= top]
+        return pmf, tail, tail_mean
+
     def transition_model(self) -> tuple[np.ndarray, np.ndarray]:
         """Exact ``P (S, A, S)`` and expected rewards ``R (S, A)``.
 
-        Orders that do not fit the shelf are modelled as "order nothing"
-        rows so the arrays are complete; a masked learner never takes them.
-        Demand above ``2 * capacity + 20`` is lumped into the tail mass; its
-        sales are capped by the stock, so only the lost-sale term needs the
-        tail mean, which is computed exactly from the Poisson mean.
+        State ``i`` is the stock level ``stock_levels[i]``. Orders that do not
+        fit the shelf are modelled as "order nothing" rows so the arrays are
+        complete; a masked learner never takes them. Demand from ``top`` up
+        (``top`` beyond every stock level, at least ``2 * capacity + 20``) is
+        one lumped outcome: it empties the shelf (lost sales) or reaches the
+        lowest level (backlog), and its expected rewards use the exact tail
+        mass and tail mean of the Poisson law, so the model is exact.
         """
-        n = self.capacity + 1
-        lam = self.mean_demand
-        d_max = 2 * self.capacity + 20
-        pmf = np.array(
-            [math.exp(-lam + d * math.log(lam) - math.lgamma(d + 1)) for d in range(d_max)]
-        )
-        tail = max(0.0, 1.0 - pmf.sum())
-        tail_mean = lam - float(np.arange(d_max) @ pmf)  # E[D; D >= d_max]
+        levels = self.stock_levels
+        n = levels.size
+        top = max(2 * self.capacity + 20, self.capacity - self._lowest + 1)
+        pmf, tail, tail_mean = self._demand(top)
+        demand = np.arange(top)
+        # Per order-up-to level y: the next state's distribution and the expected
+        # reward without the ordering cost (which depends on the order, not on y).
+        nxt = np.zeros((n, n))
+        gain = np.zeros(n)
+        for i, y in enumerate(levels):
+            for d, p in zip(demand, pmf, strict=True):
+                left, profit = self._profit(int(y), 0, int(d))
+                nxt[i, left - self._lowest] += p
+                gain[i] += p * profit
+            if self.backlog:  # every tail demand exceeds y - lowest: the stock hits the bottom
+                room = y - self._lowest
+                nxt[i, 0] += tail
+                gain[i] += (
+                    self.price * room * tail - self.backorder_cost * (-self._lowest) * tail
+                    - self.lost_sale_penalty * (tail_mean - room * tail)
+                )
+            else:  # every tail demand exceeds y: all y units sell
+                nxt[i, 0] += tail
+                gain[i] += (
+                    self.price * y * tail - self.lost_sale_penalty * (tail_mean - y * tail)
+                )
         P = np.zeros((n, n, n))
         R = np.zeros((n, n))
-        for s in range(n):
+        for i, x in enumerate(levels):
             for q in range(n):
-                order = q if s + q <= self.capacity else 0
-                for d, p in enumerate(pmf):
-                    left, profit = self._profit(s, order, d)
-                    P[s, q, left] += p
-                    R[s, q] += p * profit
-                # tail: everything sells out (d >= d_max > stock)
-                available = s + order
-                P[s, q, 0] += tail
-                R[s, q] += (
-                    tail
-                    * (
-                        self.price * available
-                        - self.unit_cost * order
-                        - (self.order_fee if order > 0 else 0.0)
-                        + self.lost_sale_penalty * available
-                    )
-                    - self.lost_sale_penalty * tail_mean
+                order = q if x + q <= self.capacity else 0
+                P[i, q] = nxt[i + order]
+                R[i, q] = (
+                    gain[i + order] - self.unit_cost * order
+                    - (self.order_fee if order > 0 else 0.0)
                 )
         return P, R
+
+    def finite_mdp(self) -> FiniteMDP:
+        """The exact model as a :class:`tdkit.FiniteMDP` with the scenario's discount.
+
+        Its start distribution is that of :meth:`reset` (uniform over
+        ``0..capacity``) and its action masks are :meth:`action_mask`'s, so the
+        solvers and :func:`tdkit.agent_policy` only consider orders that fit.
+        State ``i`` is the stock level ``stock_levels[i]``, the observation
+        itself without backlog; with backlog, ask an agent about
+        ``stock_levels[i]``, not ``i``.
+
+        Examples
+        --------
+        >>> from tdkit import value_iteration
+        >>> mdp = InventoryEnv().finite_mdp()
+        >>> value_iteration(mdp).policy.tolist()   # an (s, S) rule: below 4, fill to 10
+        [10, 9, 8, 7, 0, 0, 0, 0, 0, 0, 0]
+        """
+        P, R = self.transition_model()
+        initial = (self.stock_levels >= 0).astype(np.float64)
+        masks = np.array([self.action_mask(int(x)) for x in self.stock_levels])
+        return FiniteMDP(P, R, gamma=self.gamma, initial=initial / initial.sum(), masks=masks)
