@@ -102,3 +102,17 @@ def test_the_named_never_edges(module):
     if _layer(module) <= 3 and not module.endswith("._kernels"):
         heavy = sorted(top_level & set(OPTIONAL))
         assert not heavy, f"tdkit.{module} imports {heavy} at import time (import lazily)"
+
+
+def test_saved_files_are_read_without_pickle():
+    """Loading is pickle-free: no module of the store imports pickle (arrays are read with
+    ``np.frombuffer`` after their dtype is checked against the plain ones tdkit writes). The
+    sweep dispatcher's in-memory round trip between worker
+    processes is the only pickle use, and it never reads a file."""
+    store_modules = [m for m in _modules() if m.split(".")[-1] in
+                     ("store", "_store_files", "_store_state", "_store_history")]
+    assert len(store_modules) >= 4
+    for module in store_modules:
+        text = (SRC / (module.replace(".", "/") + ".py")).read_text(encoding="utf-8")
+        assert "import pickle" not in text, module
+        assert "allow_pickle=True" not in text, module

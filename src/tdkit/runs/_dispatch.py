@@ -25,7 +25,7 @@ guarantees:
 from __future__ import annotations
 
 import os
-import pickle
+import pickle  # in-memory round trip between worker processes only; files never use it
 import signal
 import socket
 import threading
