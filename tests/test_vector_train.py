@@ -115,3 +115,16 @@ def test_vector_training_refuses_what_it_cannot_honour():
     with pytest.raises(ValueError, match="2 sub-environments but 3 agents"):
         tdkit.train(_agents(_q, gym.make("FrozenLake-v1")), venv, episodes=1)
     venv.close()
+
+
+def test_a_nan_reward_in_a_sub_environment_is_refused_as_in_scalar_training():
+    class NanLake(gym.Wrapper):
+        def step(self, action):
+            obs, _, terminated, truncated, info = self.env.step(action)
+            return obs, float("nan"), terminated, truncated, info
+
+    venv = SyncVectorEnv([lambda: NanLake(gym.make("FrozenLake-v1"))] * 2)
+    agents = _agents(_q, gym.make("FrozenLake-v1"))[:2]
+    with pytest.raises(tdkit.EnvironmentProtocolError, match="reward nan at step 1"):
+        tdkit.train(agents, venv, episodes=1)
+    venv.close()

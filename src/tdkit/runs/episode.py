@@ -110,7 +110,8 @@ def info_mask(info: dict[str, Any] | None) -> np.ndarray | None:
     return arr  # let the agent's own check report anything stranger
 
 
-def _bad_reward(reward: Any, step: int) -> EnvironmentProtocolError:
+def bad_reward(reward: Any, step: int) -> EnvironmentProtocolError:
+    """The error for a reward that is not a finite number (the driver and vector training)."""
     return EnvironmentProtocolError(
         f"the environment returned the reward {reward!r} at step {step} of the episode; "
         "rewards must be finite real numbers. Fix the simulator (or clip its rewards)."
@@ -204,7 +205,7 @@ def run_episode(
             next_obs, reward, terminated, truncated, info = step_env(action)
             length += 1
             if not -_INF < reward < _INF:
-                raise _bad_reward(reward, length)
+                raise bad_reward(reward, length)
             if length == limit:
                 truncated = True
             next_mask = info_mask(info) if use_action_masks else None

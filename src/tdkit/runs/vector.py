@@ -30,7 +30,7 @@ import numpy as np
 from gymnasium.vector.utils import iterate
 
 from .._errors import InvalidParameterError
-from .episode import info_mask
+from .episode import bad_reward, info_mask
 from .fit import check_agent_fits
 from .history import History
 from .seeds import episode_seed, root_sequence
@@ -172,10 +172,7 @@ def train_vector(
                     continue
                 reward = float(rewards[k])
                 if not -_INF < reward < _INF:
-                    raise InvalidParameterError(
-                        f"train: sub-environment {k} returned the reward {reward!r}; rewards "
-                        "must be finite real numbers."
-                    )
+                    raise bad_reward(reward, lane.length + 1)
                 terminated, truncated = bool(terms[k]), bool(truncs[k])
                 lane.length += 1
                 if lane.length == limit:
