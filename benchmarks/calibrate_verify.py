@@ -40,6 +40,7 @@ ROOT = pathlib.Path(__file__).resolve().parent.parent
 CONTROL = [
     "QLearning", "Sarsa", "ExpectedSarsa", "DoubleQLearning", "NStepSarsa", "TreeBackup",
     "SarsaLambda", "WatkinsQLambda", "DynaQ", "DynaQPlus", "PrioritizedSweeping",
+    "DifferentialQLearning", "DifferentialSarsa",
 ]
 PREDICTION = ["TD0", "TDLambda"]
 VARIANTS = ("defaults", "recommended")
@@ -77,6 +78,35 @@ def make_factory(name: str, variant: str):
     return make
 
 
+def same_as_defaults(name: str) -> bool:
+    """True when ``recommended_settings(name)`` equals the learner's constructor defaults.
+
+    The two variants then build the same agent and give the same report for a
+    seed, so only ``defaults`` is run and its records stand for both rows.
+    """
+    import tdkit.learners
+    from tdkit.verify import recommended_settings
+
+    cls = getattr(tdkit.learners, name)
+    defaults = cls(2, 2).get_params()
+    return all(defaults.get(k) == v for k, v in recommended_settings(name).items())
+
+
+def source_commit() -> str:
+    """The git commit of the tree the runs use (``"unknown"`` outside a checkout)."""
+    import subprocess
+
+    try:
+        out = subprocess.run(["git", "-C", str(ROOT), "rev-parse", "--short", "HEAD"],
+                             capture_output=True, text=True, check=True)
+    except (OSError, subprocess.CalledProcessError):
+        return "unknown"
+    return out.stdout.strip()
+
+
+COMMIT = source_commit()
+
+
 def run_one(job: tuple[str, str, str, int]) -> dict:
     name, variant, level, seed = job[:4]
     from tdkit.verify import run_check, verify_agent
@@ -86,14 +116,14 @@ def run_one(job: tuple[str, str, str, int]) -> dict:
         result = run_check(make_factory(name, variant), job[4], level=level, seed=seed)
         return {
             "learner": name, "variant": variant, "level": level, "seed": seed,
-            "seconds": round(time.perf_counter() - started, 2),
+            "seconds": round(time.perf_counter() - started, 2), "commit": COMMIT,
             "checks": {result.name: result.status},
             "messages": {result.name: result.message} if result.failed else {},
         }
     report = verify_agent(make_factory(name, variant), level=level, seed=seed)
     return {
         "learner": name, "variant": variant, "level": level, "seed": seed,
-        "seconds": round(time.perf_counter() - started, 2),
+        "seconds": round(time.perf_counter() - started, 2), "commit": COMMIT,
         "checks": {c.name: c.status for c in report},
         "messages": {c.name: c.message for c in report if c.failed},
     }
@@ -138,6 +168,9 @@ def summarize(records: list[dict]) -> str:
         total = defaultdict(lambda: [0, 0])
         for (level, learner, variant), runs in sorted(groups.items()):
             n = len(runs)
+            if (variant == "defaults" and (level, learner, "recommended") not in groups
+                    and learner not in PREDICTION and same_as_defaults(learner)):
+                variant = "defaults = recommended"
             any_fail = sum(any(s == "failed" for s in r["checks"].values()) for r in runs)
             per = []
             for c in checks:
@@ -159,6 +192,9 @@ def summarize(records: list[dict]) -> str:
         lines.append("|---|---|---|---|")
         for (level, c), (k, n) in sorted(total.items()):
             lines.append(f"| {level} | {c} | {k}/{n} | {upper_bound(k, n):.4f} |")
+    commits = sorted({r.get("commit", "unknown") for r in records})
+    lines.append("")
+    lines.append(f"{len(records)} records; source commit(s): {', '.join(commits)}")
     if broken:
         lines.append("")
         lines.append("Detections of planted bugs (caught by the check that names it / runs)")
@@ -208,7 +244,9 @@ def main(argv: list[str] | None = None) -> int:
     if args.smoke:
         seeds, learners, variants, mutants = [1], ["QLearning", "TD0"], ["defaults"], \
             all_mutants[:2]
-    jobs = [(n, v, args.level, s) for s in seeds for n in learners for v in variants]
+    duplicates = {n for n in learners if n not in PREDICTION and same_as_defaults(n)}
+    jobs = [(n, v, args.level, s) for s in seeds for n in learners for v in variants
+            if not (v == "recommended" and n in duplicates and "defaults" in variants)]
     named = _mutants_module().MUTANT_CHECKS
     jobs += [(m, "mutant", args.level, s, *([named[m]] if args.named_check_only else []))
              for s in seeds for m in mutants]
