@@ -70,6 +70,21 @@ def test_a_dask_sweep_equals_a_process_pool_sweep_for_the_same_seeds(client):
     assert len(on_dask) == 6 and np.isfinite(on_dask.scores()).all()
 
 
+def test_a_dask_sweep_of_many_runs_sends_them_in_chunks_with_the_same_results(client):
+    # 40 runs on 2 workers go as 5 calls per task (4 tasks per worker); each run keeps its
+    # own record, failures included, in the order of a serial sweep.
+    from tdkit.runs._dispatch import _chunk_size
+
+    executor = client.get_executor()
+    assert _chunk_size(executor, 0, 40) == 5
+    kwargs = {"seeds": range(20), "settings": [{"step_size": 0.5}, {"step_size": 1.5}],
+              "episodes": 4, "on_error": "record"}
+    on_dask = run_sweep(MAKE_Q, MAKE_ENV, executor=executor, **kwargs)
+    serial = run_sweep(MAKE_Q, MAKE_ENV, max_workers=1, **kwargs)
+    assert _as_comparable(on_dask) == _as_comparable(serial)
+    assert [(r.setting_index, r.seed) for r in on_dask.failures] == [(1, s) for s in range(20)]
+
+
 def test_failures_on_dask_are_records_or_a_partial_result(client):
     kwargs = {"seeds": [0, 1], "settings": [{"step_size": 0.5}, {"step_size": 1.5}],
               "episodes": 5}

@@ -230,10 +230,39 @@ def _is_killed_worker(exc: BaseException) -> bool:
 
 
 def _window(executor: Executor, workers: int, n: int) -> int:
+    """How many tasks to keep in flight: two per worker, so none waits for the next."""
+    width = _width(executor, workers)
+    return n if width is None else min(2 * width, n)
+
+
+def _width(executor: Executor, workers: int) -> int | None:
+    """The executor's number of workers, when it can be known (None for Dask and others)."""
     width = getattr(executor, "_max_workers", None)
     if isinstance(width, int) and width >= 1:
-        return min(width, n)
-    return n if workers == 0 else min(workers, n)
+        return width
+    client = getattr(executor, "_client", None)  # distributed.client.ClientExecutor
+    if client is not None:
+        try:
+            threads = sum(client.nthreads().values())
+        except Exception:  # a client that cannot tell
+            threads = 0
+        return threads or None
+    return None if workers == 0 else workers
+
+
+def _chunk_size(executor: Executor, workers: int, n: int) -> int:
+    """Calls per task: 1 for process pools; for executors with a per-task cost of their own
+    (a Dask scheduler) about 4 tasks per worker, so that cost is paid 4 times per worker."""
+    if getattr(executor, "_max_workers", None) is not None or workers != 0:
+        return 1
+    width = _width(executor, workers) or 1
+    return max(1, n // (4 * width))
+
+
+def _guarded_chunk(fn: Callable[..., Any], calls: Sequence[tuple[Any, ...]],
+                   origin: tuple[str, int]) -> tuple[RunOutcome, ...]:
+    """:func:`_guarded` for several calls in one task."""
+    return tuple(_guarded(fn, args, origin) for args in calls)
 
 
 def dispatch(
@@ -330,34 +359,42 @@ def _drain(pool: Executor, fn: Callable[..., Any], calls: Sequence[tuple[Any, ..
     Returns whether the pool broke and the calls that were in flight when it did (the
     suspects; they are not done).
     """
+    chunk = _chunk_size(pool, workers, len(calls))
     window = _window(pool, workers, len(calls))
-    in_flight: dict[Future, int] = {}
+    in_flight: dict[Future, tuple[int, ...]] = {}
     suspects: set[int] = set()
     broken = stopped = False
     while in_flight or (pending and not stopped and not broken):
         while pending and not stopped and not broken and len(in_flight) < window:
-            index = pending.pop()
+            indices = tuple(pending.pop() for _ in range(min(chunk, len(pending))))
             try:
-                in_flight[pool.submit(_guarded, fn, calls[index], origin)] = index
+                if chunk == 1:
+                    future = pool.submit(_guarded, fn, calls[indices[0]], origin)
+                else:
+                    future = pool.submit(_guarded_chunk, fn, [calls[i] for i in indices], origin)
+                in_flight[future] = indices
             except BrokenExecutor:
-                pending.append(index)
+                pending.extend(reversed(indices))
                 broken = True
             except Exception as exc:  # e.g. the executor cannot serialise it
-                done(index, RunOutcome(None, RunFailure.from_exception(exc, in_process=True), ()))
+                for index in indices:
+                    done(index, RunOutcome(None, RunFailure.from_exception(exc, in_process=True),
+                                           ()))
                 stopped = stop_on_failure
         if not in_flight:
             break
         finished, _ = wait(in_flight, return_when=FIRST_COMPLETED)
         for future in finished:
-            index = in_flight.pop(future)
+            indices = in_flight.pop(future)
             try:
-                outcome = future.result()
+                result = future.result()
+                outcomes = (result,) if chunk == 1 else result
             except BrokenExecutor:
                 broken = True
-                suspects.add(index)
+                suspects.update(indices)
                 continue
             except CancelledError:
-                pending.append(index)
+                pending.extend(indices)
                 pending.sort(reverse=True)
                 continue
             except Exception as exc:  # the result could not come back
@@ -365,10 +402,11 @@ def _drain(pool: Executor, fn: Callable[..., Any], calls: Sequence[tuple[Any, ..
                     RunFailure(f"it killed its worker processes ({exc})", crashed=True)
                     if _is_killed_worker(exc) else RunFailure.from_exception(exc, in_process=True)
                 )
-                outcome = RunOutcome(None, failure, ())
-            done(index, outcome)
-            if outcome.failure is not None and stop_on_failure:
-                stopped = True
+                outcomes = (RunOutcome(None, failure, ()),) * len(indices)
+            for index, outcome in zip(indices, outcomes, strict=True):
+                done(index, outcome)
+                if outcome.failure is not None and stop_on_failure:
+                    stopped = True
     return broken, suspects
 
 
