@@ -13,7 +13,7 @@ from tdkit.dp import value_iteration
 from tdkit.envs.finite import FiniteMDP
 from tdkit.envs.problems import dyna_maze, garnet, shortcut_maze
 from tdkit.learners import DynaQ, DynaQPlus, PrioritizedSweeping, QLearning
-from tdkit.learners._models import CountsModel, LastOutcomeModel
+from tdkit.learners._models import CountsModel, LastOutcomeModel, Outcome
 from tdkit.testing.streams import feed, random_transitions
 
 PLANNERS = [DynaQ, DynaQPlus, PrioritizedSweeping]
@@ -66,7 +66,9 @@ def test_last_outcome_model_forgets_the_old_successor():
     model = LastOutcomeModel()
     model.record(0, 1, 1.0, 2, False, None)
     model.record(0, 1, 5.0, 3, True, None)
-    assert model.outcomes(0, 1) == [(1.0, 5.0, 3, True, None)]
+    assert model.outcomes(0, 1) == [
+        Outcome(probability=1.0, next_state=3, reward=5.0, terminated=True, next_mask=None)
+    ]
     assert model.predecessors_of(2) == [] and model.predecessors_of(3) == [(0, 1)]
 
 
@@ -79,11 +81,11 @@ def test_counts_model_samples_in_proportion_to_counts():
             model.record(0, 0, float(s2), s2, False, None)
     rng = np.random.default_rng(0)
     n = 16_000
-    draws = np.bincount([model.sample(0, 0, rng)[1] for _ in range(n)], minlength=4)[1:]
+    draws = np.bincount([model.sample(0, 0, rng).next_state for _ in range(n)], minlength=4)[1:]
     expected = n * np.array([1, 2, 5]) / 8
     chi2 = ((draws - expected) ** 2 / expected).sum()
     assert chi2 < stats.chi2.ppf(1 - 1e-6, df=2)
-    probs = {s2: p for p, _r, s2, _t, _m in model.outcomes(0, 0)}
+    probs = {o.next_state: o.probability for o in model.outcomes(0, 0)}
     assert probs == {1: 1 / 8, 2: 2 / 8, 3: 5 / 8}
 
 

@@ -8,9 +8,10 @@ Two tabular models answer the same questions:
   distinct ``(next state, terminated)`` outcome and the mean reward seen with
   it, i.e. the maximum-likelihood model of a stochastic environment.
 
-An outcome is ``(reward, next_state, terminated, next_mask)``. Transitions cut
-by a time limit are recorded as ordinary, non-terminal outcomes: truncation
-is not part of the dynamics. Both models keep predecessor lists (which pairs
+Both answer with :class:`Outcome` named tuples ``(probability, next_state,
+reward, terminated, next_mask)``. Transitions cut by a time limit are
+recorded as ordinary, non-terminal outcomes: truncation is not part of the
+dynamics. Both models keep predecessor lists (which pairs
 are predicted to lead to a state) for prioritized sweeping.
 
 References
@@ -23,19 +24,30 @@ References
 from __future__ import annotations
 
 import math
-from typing import Any
+from typing import Any, ClassVar, NamedTuple
 
 import numpy as np
 
 from .._errors import InvalidParameterError
 
-__all__ = ["MODEL_KINDS", "CountsModel", "LastOutcomeModel", "make_model"]
+__all__ = ["MODEL_KINDS", "CountsModel", "LastOutcomeModel", "Outcome", "make_model"]
 
 #: The model kinds the planning learners accept.
 MODEL_KINDS = ("last", "counts")
 
-Outcome = tuple[float, int, bool, "np.ndarray | None"]
-"""(reward, next state, terminated, mask of the next state)."""
+
+class Outcome(NamedTuple):
+    """One predicted outcome of an observed pair.
+
+    The field order is that of the outcomes of :class:`tdkit.FiniteMDP` and of
+    gymnasium's ``P[s][a]`` tables, plus the mask of the next state.
+    """
+
+    probability: float
+    next_state: int
+    reward: float
+    terminated: bool
+    next_mask: np.ndarray | None
 
 
 class _PairIndex:
@@ -165,57 +177,47 @@ def _mask_from_json(mask: list[bool] | None) -> np.ndarray | None:
     return None if mask is None else np.array(mask, dtype=bool)
 
 
-class LastOutcomeModel(_PairIndex):
-    """Each observed pair predicts the outcome it had last (deterministic model).
+class _Model(_PairIndex):
+    """What both models share: recording a transition, the saved-state layout and its check.
 
-    Examples
-    --------
-    >>> import numpy as np
-    >>> m = LastOutcomeModel()
-    >>> m.record(0, 1, 2.0, 3, False, None)
-    >>> m.outcomes(0, 1)
-    [(1.0, 2.0, 3, False, None)]
-    >>> m.predecessors_of(3)
-    [(0, 1)]
+    ``_table`` maps each observed pair to what the model keeps for it;
+    subclasses say how a transition changes that entry (:meth:`_update`),
+    how an entry is written to and read from a saved row, and which next
+    states a saved row predicts (for the predecessor check).
     """
 
-    def __init__(self) -> None:
-        super().__init__()
-        self._table: dict[tuple[int, int], Outcome] = {}
+    #: Completes "covered: pairs without ..." in the message about a pair with no row.
+    _missing: ClassVar[str] = "outcomes"
+
+    _table: dict[tuple[int, int], Any]
 
     def record(
         self, s: int, a: int, r: float, s2: int, terminated: bool, mask: np.ndarray | None
     ) -> None:
-        """Remember ``(r, s2, terminated, mask)`` as the prediction for ``(s, a)``."""
+        """Learn the real transition from ``(s, a)`` to ``(r, s2, terminated, mask)``."""
         key = (s, a)
-        old = self._table.get(key)
-        self._note_pair(s, a, old is None)
-        if old is not None and old[1] != s2:
-            self.predecessors[old[1]].pop(key, None)
-        self._table[key] = (r, s2, terminated, mask)
+        entry = self._table.get(key)
+        self._note_pair(s, a, entry is None)
+        self._update(key, entry, r, s2, terminated, mask)
         self.predecessors.setdefault(s2, {})[key] = None
 
-    def sample(self, s: int, a: int, rng: np.random.Generator) -> Outcome:
-        """The predicted outcome of ``(s, a)`` (``rng`` is unused)."""
-        return self._table[(s, a)]
-
-    def outcomes(self, s: int, a: int) -> list[tuple[float, float, int, bool, np.ndarray | None]]:
-        """``[(probability, reward, next_state, terminated, mask)]`` for ``(s, a)``."""
-        r, s2, terminated, mask = self._table[(s, a)]
-        return [(1.0, r, s2, terminated, mask)]
+    def _update(
+        self, key: tuple[int, int], entry: Any, r: float, s2: int, terminated: bool,
+        mask: np.ndarray | None,
+    ) -> None:
+        raise NotImplementedError
 
     def __contains__(self, pair: object) -> bool:
         return pair in self._table
 
     def get_state(self) -> dict:
         """JSON-serialisable contents, in insertion order (for :mod:`tdkit.store`)."""
-        return {
-            **self._index_state(),
-            "table": [
-                [s, a, r, s2, bool(terminated), _mask_to_json(mask)]
-                for (s, a), (r, s2, terminated, mask) in self._table.items()
-            ],
-        }
+        row = self._row_to_json
+        return {**self._index_state(), "table": [row(key, v) for key, v in self._table.items()]}
+
+    @staticmethod
+    def _row_to_json(key: tuple[int, int], entry: Any) -> list:
+        raise NotImplementedError
 
     @classmethod
     def check_state(cls, state: Any, n_states: int, n_actions: int) -> None:
@@ -224,28 +226,83 @@ class LastOutcomeModel(_PairIndex):
         table = state["table"]
         _expect(isinstance(table, list) and len(table) == len(pairs), "table", table,
                 "one row per observed pair")
-        for row in table:
-            ok = (isinstance(row, list) and len(row) == 6 and (row[0], row[1]) in pairs
-                  and _is_real(row[2]) and _is_index(row[3], n_states)
-                  and isinstance(row[4], bool) and _is_mask(row[5], n_actions))
-            _expect(ok, "table", row, "[state, action, reward, next state, terminated, mask]")
-            pairs.discard((row[0], row[1]))
-        _expect(not pairs, "table", sorted(pairs), "covered: pairs without an outcome")
         derived: dict[int, set[tuple[int, int]]] = {}
         for row in table:
-            derived.setdefault(row[3], set()).add((row[0], row[1]))
+            for s2 in cls._checked_successors(row, pairs, n_states, n_actions):
+                derived.setdefault(s2, set()).add((row[0], row[1]))
+            pairs.discard((row[0], row[1]))
+        _expect(not pairs, "table", sorted(pairs), f"covered: pairs without {cls._missing}")
         _check_predecessors(state, derived)
+
+    @staticmethod
+    def _checked_successors(
+        row: Any, pairs: set[tuple[int, int]], n_states: int, n_actions: int
+    ) -> list[int]:
+        """Raise unless ``row`` is a saved row of a pair in ``pairs``; return its next states."""
+        raise NotImplementedError
+
+
+class LastOutcomeModel(_Model):
+    """Each observed pair predicts the outcome it had last (deterministic model).
+
+    Examples
+    --------
+    >>> m = LastOutcomeModel()
+    >>> m.record(0, 1, 2.0, 3, False, None)
+    >>> m.outcomes(0, 1)
+    [Outcome(probability=1.0, next_state=3, reward=2.0, terminated=False, next_mask=None)]
+    >>> m.predecessors_of(3)
+    [(0, 1)]
+    """
+
+    _missing = "an outcome"
+
+    def __init__(self) -> None:
+        super().__init__()
+        self._table: dict[tuple[int, int], Outcome] = {}
+
+    def _update(
+        self, key: tuple[int, int], entry: Outcome | None, r: float, s2: int, terminated: bool,
+        mask: np.ndarray | None,
+    ) -> None:
+        if entry is not None and entry.next_state != s2:
+            self.predecessors[entry.next_state].pop(key, None)
+        self._table[key] = Outcome(1.0, s2, r, terminated, mask)
+
+    def sample(self, s: int, a: int, rng: np.random.Generator) -> Outcome:
+        """The predicted outcome of ``(s, a)`` (``rng`` is unused)."""
+        return self._table[(s, a)]
+
+    def outcomes(self, s: int, a: int) -> list[Outcome]:
+        """The one predicted outcome of ``(s, a)``, with probability 1."""
+        return [self._table[(s, a)]]
+
+    @staticmethod
+    def _row_to_json(key: tuple[int, int], entry: Outcome) -> list:
+        s, a = key
+        return [s, a, entry.reward, entry.next_state, bool(entry.terminated),
+                _mask_to_json(entry.next_mask)]
+
+    @staticmethod
+    def _checked_successors(
+        row: Any, pairs: set[tuple[int, int]], n_states: int, n_actions: int
+    ) -> list[int]:
+        ok = (isinstance(row, list) and len(row) == 6 and (row[0], row[1]) in pairs
+              and _is_real(row[2]) and _is_index(row[3], n_states)
+              and isinstance(row[4], bool) and _is_mask(row[5], n_actions))
+        _expect(ok, "table", row, "[state, action, reward, next state, terminated, mask]")
+        return [row[3]]
 
     def set_state(self, state: dict) -> None:
         """Inverse of :meth:`get_state`."""
         self._set_index_state(state)
         self._table = {
-            (int(s), int(a)): (float(r), int(s2), bool(t), _mask_from_json(m))
+            (int(s), int(a)): Outcome(1.0, int(s2), float(r), bool(t), _mask_from_json(m))
             for s, a, r, s2, t, m in state["table"]
         }
 
 
-class CountsModel(_PairIndex):
+class CountsModel(_Model):
     """Outcome counts and mean rewards per pair (maximum-likelihood model).
 
     Examples
@@ -253,7 +310,7 @@ class CountsModel(_PairIndex):
     >>> m = CountsModel()
     >>> for r, s2 in [(1.0, 1), (3.0, 1), (0.0, 2)]:
     ...     m.record(0, 0, r, s2, False, None)
-    >>> [(round(p, 3), r, s2) for p, r, s2, _, _ in m.outcomes(0, 0)]
+    >>> [(round(o.probability, 3), o.reward, o.next_state) for o in m.outcomes(0, 0)]
     [(0.667, 2.0, 1), (0.333, 0.0, 2)]
     """
 
@@ -263,13 +320,11 @@ class CountsModel(_PairIndex):
         self._table: dict[tuple[int, int], dict[tuple[int, bool], list]] = {}
         self._totals: dict[tuple[int, int], int] = {}
 
-    def record(
-        self, s: int, a: int, r: float, s2: int, terminated: bool, mask: np.ndarray | None
+    def _update(
+        self, key: tuple[int, int], per_pair: dict[tuple[int, bool], list] | None, r: float,
+        s2: int, terminated: bool, mask: np.ndarray | None,
     ) -> None:
         """Count the outcome and update its mean reward incrementally."""
-        key = (s, a)
-        per_pair = self._table.get(key)
-        self._note_pair(s, a, per_pair is None)
         if per_pair is None:
             per_pair = self._table[key] = {}
             self._totals[key] = 0
@@ -281,69 +336,50 @@ class CountsModel(_PairIndex):
             entry[1] += (r - entry[1]) / entry[0]
             entry[2] = mask
         self._totals[key] += 1
-        self.predecessors.setdefault(s2, {})[key] = None
 
     def sample(self, s: int, a: int, rng: np.random.Generator) -> Outcome:
         """An outcome of ``(s, a)`` drawn with probability proportional to its count."""
         key = (s, a)
-        u = rng.random() * self._totals[key]
-        items = self._table[key].items()
-        for (s2, terminated), (count, mean_r, mask) in items:
+        total = self._totals[key]
+        u = rng.random() * total
+        for (s2, terminated), (count, mean_r, mask) in self._table[key].items():
             u -= count
             if u < 0:
-                return mean_r, s2, terminated, mask
-        return mean_r, s2, terminated, mask  # pragma: no cover - rounding guard
+                return Outcome(count / total, s2, mean_r, terminated, mask)
+        return Outcome(count / total, s2, mean_r, terminated, mask)  # pragma: no cover - rounding
 
-    def outcomes(self, s: int, a: int) -> list[tuple[float, float, int, bool, np.ndarray | None]]:
-        """``[(probability, mean reward, next_state, terminated, mask)]`` for ``(s, a)``."""
+    def outcomes(self, s: int, a: int) -> list[Outcome]:
+        """Every outcome seen from ``(s, a)``, with its frequency and mean reward."""
         key = (s, a)
         total = self._totals[key]
         return [
-            (count / total, mean_r, s2, terminated, mask)
+            Outcome(count / total, s2, mean_r, terminated, mask)
             for (s2, terminated), (count, mean_r, mask) in self._table[key].items()
         ]
 
-    def __contains__(self, pair: object) -> bool:
-        return pair in self._table
+    @staticmethod
+    def _row_to_json(key: tuple[int, int], outcomes: dict[tuple[int, bool], list]) -> list:
+        s, a = key
+        return [s, a, [[s2, bool(t), count, mean_r, _mask_to_json(mask)]
+                       for (s2, t), (count, mean_r, mask) in outcomes.items()]]
 
-    def get_state(self) -> dict:
-        """JSON-serialisable contents, in insertion order (for :mod:`tdkit.store`)."""
-        return {
-            **self._index_state(),
-            "table": [
-                [s, a, [[s2, bool(t), count, mean_r, _mask_to_json(mask)]
-                        for (s2, t), (count, mean_r, mask) in outcomes.items()]]
-                for (s, a), outcomes in self._table.items()
-            ],
-        }
-
-    @classmethod
-    def check_state(cls, state: Any, n_states: int, n_actions: int) -> None:
-        """Raise ValueError naming the entry unless ``state`` fits a table of this size."""
-        pairs = cls._check_index_state(state, n_states, n_actions)
-        table = state["table"]
-        _expect(isinstance(table, list) and len(table) == len(pairs), "table", table,
-                "one row per observed pair")
-        for row in table:
-            ok = (isinstance(row, list) and len(row) == 3 and (row[0], row[1]) in pairs
-                  and isinstance(row[2], list) and row[2])
-            _expect(ok, "table", row, "[state, action, [outcomes]]")
-            seen = set()
-            for out in row[2]:
-                ok = (isinstance(out, list) and len(out) == 5 and _is_index(out[0], n_states)
-                      and isinstance(out[1], bool) and (out[0], out[1]) not in seen
-                      and _is_index(out[2], 2**62) and out[2] >= 1 and _is_real(out[3])
-                      and _is_mask(out[4], n_actions))
-                _expect(ok, "table", out,
-                        "[next state, terminated, count >= 1, mean reward, mask], distinct")
-                seen.add((out[0], out[1]))
-            pairs.discard((row[0], row[1]))
-        _expect(not pairs, "table", sorted(pairs), "covered: pairs without outcomes")
-        derived: dict[int, set[tuple[int, int]]] = {}
-        for row in table:
-            for out in row[2]:
-                derived.setdefault(out[0], set()).add((row[0], row[1]))
-        _check_predecessors(state, derived)
+    @staticmethod
+    def _checked_successors(
+        row: Any, pairs: set[tuple[int, int]], n_states: int, n_actions: int
+    ) -> list[int]:
+        ok = (isinstance(row, list) and len(row) == 3 and (row[0], row[1]) in pairs
+              and isinstance(row[2], list) and row[2])
+        _expect(ok, "table", row, "[state, action, [outcomes]]")
+        seen = set()
+        for out in row[2]:
+            ok = (isinstance(out, list) and len(out) == 5 and _is_index(out[0], n_states)
+                  and isinstance(out[1], bool) and (out[0], out[1]) not in seen
+                  and _is_index(out[2], 2**62) and out[2] >= 1 and _is_real(out[3])
+                  and _is_mask(out[4], n_actions))
+            _expect(ok, "table", out,
+                    "[next state, terminated, count >= 1, mean reward, mask], distinct")
+            seen.add((out[0], out[1]))
+        return [out[0] for out in row[2]]
 
     def set_state(self, state: dict) -> None:
         """Inverse of :meth:`get_state`."""

@@ -161,8 +161,8 @@ class DynaQ(_PlanningLearner):
         learn = self._q_learning_step
         for _ in range(self.planning_steps):
             s, a = model.sample_pair(rng)
-            r, s2, terminated, mask = model.sample(s, a, rng)
-            learn(Transition(s, a, r, s2, terminated, False, mask))
+            o = model.sample(s, a, rng)
+            learn(Transition(s, a, o.reward, o.next_state, o.terminated, False, o.next_mask))
         self.planning_updates_ += self.planning_steps
 
 
@@ -262,7 +262,8 @@ class DynaQPlus(DynaQ):
             mask = self._known_masks.get(s)
             a = uniform_action(self.n_actions, mask, rng)
             if (s, a) in model:
-                r, s2, terminated, next_mask = model.sample(s, a, rng)
+                o = model.sample(s, a, rng)
+                r, s2, terminated, next_mask = o.reward, o.next_state, o.terminated, o.next_mask
             else:  # never tried: the model returns to s with reward 0
                 r, s2, terminated, next_mask = 0.0, s, False, mask
             r += kappa * math.sqrt(now - last[s, a])
@@ -362,11 +363,12 @@ class PrioritizedSweeping(_PlanningLearner):
     def _model_target(self, s: int, a: int) -> float:
         gamma = self.gamma
         target = 0.0
-        for p, r, s2, terminated, mask in self._model.outcomes(s, a):
-            if terminated:
-                target += p * r
+        for o in self._model.outcomes(s, a):
+            if o.terminated:
+                target += o.probability * o.reward
             else:
-                target += p * (r + gamma * greedy_max(self._row(s2), self._allowed(mask)))
+                best = greedy_max(self._row(o.next_state), self._allowed(o.next_mask))
+                target += o.probability * (o.reward + gamma * best)
         return target
 
     def _queue(self, pair: tuple[int, int]) -> None:
