@@ -211,6 +211,10 @@ class TabularAgent:
     #: Advice for keywords a user may bring from another learner (see TD0).
     _keyword_hints: ClassVar[dict[str, str]] = {}
 
+    #: Whether the learner discounts: :meth:`for_env` passes on the env's ``gamma``
+    #: if so, and refuses a ``gamma`` if not (the average-reward learners).
+    _discounts: ClassVar[bool] = True
+
     #: The learned state :mod:`tdkit.store` saves, as ``(attribute, kind)`` pairs;
     #: subclasses declare only their own fields (see :mod:`tdkit.store` for the kinds).
     _saved_state: ClassVar[tuple[tuple[str, str], ...]] = (
@@ -393,7 +397,14 @@ class TabularAgent:
         ``env`` may be anything :func:`tdkit.envs.adapt` accepts. When
         ``gamma`` is not given and ``env.unwrapped`` has a ``gamma``
         attribute (as the models of :class:`tdkit.FiniteMDP` do), that
-        discount is used.
+        discount is used. Learners that do not discount (the average-reward
+        ones) read no discount from ``env`` and refuse a ``gamma`` keyword.
+
+        Raises
+        ------
+        InvalidParameterError
+            If ``env`` has no observation or action space and no encoder is
+            given for it, or a learner that does not discount gets ``gamma``.
 
         Examples
         --------
@@ -406,6 +417,12 @@ class TabularAgent:
         from .encoders import action_encoder_for_space, for_space
         from .envs import adapt
 
+        if not cls._discounts and "gamma" in kwargs:
+            raise InvalidParameterError(
+                f"{cls.__name__}.for_env: {cls.__name__} does not discount (an average-reward "
+                f"learner) and takes no gamma; got gamma={kwargs['gamma']!r}. Drop it, or use "
+                "a discounted learner."
+            )
         env = adapt(env)
         obs_space = getattr(env, "observation_space", None)
         act_space = getattr(env, "action_space", None)
@@ -425,7 +442,7 @@ class TabularAgent:
                     "constructor instead."
                 )
             kwargs["action_encoder"] = action_encoder_for_space(act_space)
-        if "gamma" not in kwargs:
+        if cls._discounts and "gamma" not in kwargs:
             env_gamma = getattr(getattr(env, "unwrapped", env), "gamma", None)
             if isinstance(env_gamma, (int, float)):
                 kwargs["gamma"] = float(env_gamma)

@@ -80,8 +80,12 @@ class _AverageReward:
     """What the three differential learners share: the average, the restart, no discount.
 
     Put it first in the bases. Subclasses call :meth:`_init_average` after the
-    base constructor and implement :meth:`_restart_value`.
+    base constructor and implement :meth:`_next_value` (the bootstrap value of
+    a transition that did not terminate) and :meth:`_restart_value`.
     """
+
+    #: Read by :meth:`tdkit.TabularAgent.for_env`: no discount is taken from the env.
+    _discounts: ClassVar[bool] = False
 
     _saved_state: ClassVar[tuple[tuple[str, str], ...]] = (
         ("average_reward", "real"), ("_restart", "held_transition"),
@@ -106,37 +110,19 @@ class _AverageReward:
         self.average_reward = require_real(name, "initial_average_reward", initial_average_reward)
         self._restart = None
 
-    @classmethod
-    def for_env(cls, env: Any, **kwargs: Any) -> Any:
-        """Build a learner whose encoders match ``env``'s spaces.
-
-        As :meth:`tdkit.TabularAgent.for_env`, except that no discount is
-        read from ``env.unwrapped.gamma``: average reward does not discount.
-        """
-        from ..encoders import action_encoder_for_space, for_space
-        from ..envs import adapt
-
-        if "gamma" in kwargs:
-            raise InvalidParameterError(
-                f"{cls.__name__}.for_env: average-reward learners take no gamma; got "
-                f"gamma={kwargs['gamma']!r}. Drop it, or use a discounted learner."
-            )
-        env = adapt(env)
-        for key, space_name, make in (
-            ("state_encoder", "observation_space", for_space),
-            ("action_encoder", "action_space", action_encoder_for_space),
-        ):
-            if key not in kwargs:
-                space = getattr(env, space_name, None)
-                if space is None:
-                    raise InvalidParameterError(
-                        f"{cls.__name__}.for_env: the environment has no {space_name}; pass "
-                        "n_states, n_actions and encoders to the constructor instead."
-                    )
-                kwargs[key] = make(space)
-        return cls(kwargs["state_encoder"].n_states, kwargs["action_encoder"].n_actions, **kwargs)
-
     # ------------------------------------------------------------ the rule
+    def _learn(self, transition: Transition) -> tuple[float, ...]:
+        s, a, r, s2, terminated, truncated, next_mask = transition
+        head = () if self._restart is None else self._close_restart(s, a)
+        if terminated:
+            return head + self._hold_restart(s, a, r)
+        target = r - self.average_reward + self._next_value(s2, next_mask, truncated)
+        return (*head, self._differential_step(s, a, target))
+
+    def _next_value(self, s2: int, next_mask: np.ndarray | None, truncated: bool) -> float:
+        r""":math:`\hat v(S_{t+1})` for a transition into ``s2`` that did not terminate."""
+        raise NotImplementedError
+
     def _differential_step(self, s: int, a: int, target: float) -> float:
         r"""The shared TD step to ``target``, then :math:`\bar R \mathrel{+}= \eta\alpha\delta`.
 
@@ -165,7 +151,32 @@ class _AverageReward:
         raise NotImplementedError
 
 
-class DifferentialQLearning(_AverageReward, TabularAgent):
+class _DifferentialControl(_AverageReward, TabularAgent):
+    """The constructor of the two control learners (their parameters are the same)."""
+
+    def __init__(
+        self,
+        n_states: int,
+        n_actions: int,
+        *,
+        step_size: float | Schedule = 0.1,
+        reward_step_size: float = _DEFAULT_ETA,
+        exploration: float | Schedule | Exploration = 0.1,
+        initial_value: InitialValue = 0.0,
+        initial_average_reward: float = 0.0,
+        seed: SeedLike = None,
+        state_encoder: Any = None,
+        action_encoder: Any = None,
+    ) -> None:
+        super().__init__(
+            n_states, n_actions, gamma=1.0, step_size=step_size, exploration=exploration,
+            initial_value=initial_value, seed=seed, state_encoder=state_encoder,
+            action_encoder=action_encoder,
+        )
+        self._init_average(reward_step_size, initial_average_reward)
+
+
+class DifferentialQLearning(_DifferentialControl):
     r"""Differential Q-learning: off-policy average-reward control.
 
     .. math::
@@ -206,8 +217,9 @@ class DifferentialQLearning(_AverageReward, TabularAgent):
 
     Raises
     ------
-    ValueError
-        If a hyper-parameter is outside its range (the message names it).
+    InvalidParameterError
+        If a hyper-parameter is outside its range, e.g. ``reward_step_size
+        <= 0`` (the message names it).
 
     References
     ----------
@@ -231,26 +243,8 @@ class DifferentialQLearning(_AverageReward, TabularAgent):
         ("_reset_mask", "mask"), ("_reset_state", "state_or_minus_one"),
     )
 
-    def __init__(
-        self,
-        n_states: int,
-        n_actions: int,
-        *,
-        step_size: float | Schedule = 0.1,
-        reward_step_size: float = _DEFAULT_ETA,
-        exploration: float | Schedule | Exploration = 0.1,
-        initial_value: InitialValue = 0.0,
-        initial_average_reward: float = 0.0,
-        seed: SeedLike = None,
-        state_encoder: Any = None,
-        action_encoder: Any = None,
-    ) -> None:
-        super().__init__(
-            n_states, n_actions, gamma=1.0, step_size=step_size, exploration=exploration,
-            initial_value=initial_value, seed=seed, state_encoder=state_encoder,
-            action_encoder=action_encoder,
-        )
-        self._init_average(reward_step_size, initial_average_reward)
+    def _init_average(self, reward_step_size: float, initial_average_reward: float) -> None:
+        super()._init_average(reward_step_size, initial_average_reward)
         # The mask act saw in the first state after a restart (for that state's max).
         self._reset_mask = np.ones(self.n_actions, dtype=bool)
         self._reset_state = -1
@@ -265,14 +259,8 @@ class DifferentialQLearning(_AverageReward, TabularAgent):
                 self._reset_state = self._encode(obs)
         return super().act(obs, mask=mask, explore=explore)
 
-    def _learn(self, transition: Transition) -> tuple[float, ...]:
-        s, a, r, s2, terminated, _truncated, next_mask = transition
-        head = () if self._restart is None else self._close_restart(s, a)
-        if terminated:
-            return head + self._hold_restart(s, a, r)
-        return (*head, self._differential_step(
-            s, a, r - self.average_reward + masked_max(self._q[s2], next_mask)
-        ))
+    def _next_value(self, s2: int, next_mask: np.ndarray | None, truncated: bool) -> float:
+        return masked_max(self._q[s2], next_mask)
 
     def _restart_value(self, s0: int, a0: int) -> float:
         mask = self._reset_mask if self._reset_state == s0 else None
@@ -280,7 +268,7 @@ class DifferentialQLearning(_AverageReward, TabularAgent):
         return masked_max(self._q[s0], mask)
 
 
-class DifferentialSarsa(_AverageReward, CommitsNextAction, TabularAgent):
+class DifferentialSarsa(_DifferentialControl, CommitsNextAction, TabularAgent):
     r"""Differential SARSA: on-policy average-reward control.
 
     .. math::
@@ -323,35 +311,13 @@ class DifferentialSarsa(_AverageReward, CommitsNextAction, TabularAgent):
     1.0
     """
 
-    def __init__(
-        self,
-        n_states: int,
-        n_actions: int,
-        *,
-        step_size: float | Schedule = 0.1,
-        reward_step_size: float = _DEFAULT_ETA,
-        exploration: float | Schedule | Exploration = 0.1,
-        initial_value: InitialValue = 0.0,
-        initial_average_reward: float = 0.0,
-        seed: SeedLike = None,
-        state_encoder: Any = None,
-        action_encoder: Any = None,
-    ) -> None:
-        super().__init__(
-            n_states, n_actions, gamma=1.0, step_size=step_size, exploration=exploration,
-            initial_value=initial_value, seed=seed, state_encoder=state_encoder,
-            action_encoder=action_encoder,
-        )
-        self._init_average(reward_step_size, initial_average_reward)
-
-    def _learn(self, transition: Transition) -> tuple[float, ...]:
-        s, a, r, s2, terminated, truncated, next_mask = transition
-        head = () if self._restart is None else self._close_restart(s, a)
-        if terminated:
-            self._drop_next_action()
-            return head + self._hold_restart(s, a, r)
+    def _next_value(self, s2: int, next_mask: np.ndarray | None, truncated: bool) -> float:
         a2 = self._next_action(s2, next_mask, truncated)
-        return (*head, self._differential_step(s, a, r - self.average_reward + self._q[s2, a2]))
+        return self._q[s2, a2]
+
+    def _hold_restart(self, s: int, a: int, r: float) -> tuple[float, ...]:
+        self._drop_next_action()  # terminated: no next action exists
+        return super()._hold_restart(s, a, r)
 
     def _restart_value(self, s0: int, a0: int) -> float:
         return float(self._q[s0, a0])
@@ -432,11 +398,10 @@ class DifferentialTD(_AverageReward, _PolicyLearner):
         self._init_average(reward_step_size, initial_average_reward)
 
     def _learn(self, transition: Transition) -> tuple[float, ...]:
-        s, _a, r, s2, terminated, _truncated, _next_mask = transition
-        head = () if self._restart is None else self._close_restart(s, 0)
-        if terminated:
-            return head + self._hold_restart(s, 0, r)
-        return (*head, self._differential_step(s, 0, r - self.average_reward + self._q[s2, 0]))
+        return super()._learn(transition._replace(action=0))  # V(s) is column 0
+
+    def _next_value(self, s2: int, next_mask: np.ndarray | None, truncated: bool) -> float:
+        return self._q[s2, 0]
 
     def _restart_value(self, s0: int, a0: int) -> float:
         return float(self._q[s0, 0])
