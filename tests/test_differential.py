@@ -9,6 +9,7 @@ tests/test_average_dp.py checks against scipy's linear programming.
 
 from __future__ import annotations
 
+import json
 import math
 
 import numpy as np
@@ -322,6 +323,27 @@ def test_save_load_and_resume_keep_the_average_and_a_held_restart(cls, tmp_path)
     tdkit.train(whole, env, episodes=5, seed=3)
     tdkit.train(again, env, episodes=5, seed=3)
     assert again.average_reward == whole.average_reward
+
+
+def test_a_held_restart_outside_the_value_table_is_refused_on_load(tmp_path):
+    # DifferentialTD learns V(s) in one column, so a saved held restart (state, action,
+    # reward) names action 0; an edited file naming another action once loaded and then
+    # failed with a bare IndexError at the next update (found by the store's edit fuzzing).
+    from tdkit.runs._store_files import digest
+
+    env = _deterministic_restart_model().to_env()
+    agent = DifferentialTD.for_env(env, policy=np.full((3, 2), 0.5), seed=5)
+    tdkit.train(agent, env, episodes=3, seed=1)
+    assert agent._restart is not None and agent._restart[1] == 0
+    path = tdkit.save(agent, tmp_path / "agent.npz")
+    with np.load(path) as saved:
+        arrays = {k: saved[k] for k in saved.files}
+    meta = json.loads(arrays.pop("meta").tobytes())
+    meta["scalars"]["_restart"][1] = 1
+    meta["digests"] = {k: digest(v) for k, v in arrays.items()}
+    np.savez(path, meta=np.frombuffer(json.dumps(meta).encode(), dtype=np.uint8), **arrays)
+    with pytest.raises(tdkit.StoreError, match="_restart"):
+        tdkit.load(path)
 
 
 def test_a_step_budget_that_cuts_the_one_episode_leaves_nothing_pending():

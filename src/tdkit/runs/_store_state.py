@@ -11,11 +11,13 @@ field has passed its check.
 from __future__ import annotations
 
 import math
+from collections.abc import Iterator
+from contextlib import contextmanager
 from typing import Any
 
 import numpy as np
 
-from .._errors import CapacityError, InvalidParameterError, StoreError
+from .._errors import StoreError
 from ._store_files import is_int, require
 
 __all__ = [
@@ -44,6 +46,20 @@ _SCALAR_KINDS = ("counter", "real", "commitment", "mask_map", "mask", "state_or_
 _KINDS = (*_ARRAY_KINDS, *_SCALAR_KINDS, "per_episode", "hooks")
 
 ENCODERS = ("state_encoder", "action_encoder")
+
+
+#: What building an object from a file's values may raise (InvalidParameterError and
+#: CapacityError are ValueErrors): it is refused as a StoreError, never leaked.
+_BUILD_ERRORS = (TypeError, ValueError, KeyError, IndexError, AttributeError)
+
+
+@contextmanager
+def _refused(message: str) -> Iterator[None]:
+    """Turn an error of building from saved values into ``StoreError("<message> (<error>).")``."""
+    try:
+        yield
+    except _BUILD_ERRORS as exc:
+        raise StoreError(f"{message} ({type(exc).__name__}: {exc}).") from None
 
 
 def saved_fields(cls: type) -> dict[str, str]:
@@ -127,7 +143,7 @@ def _decode_param(name: str, value: Any, arrays: dict[str, np.ndarray]) -> Any:
     if len(value) != 1:
         raise StoreError(f"params.{name}: unknown parameter encoding {value!r:.80}.")
     (tag, inner), = value.items()
-    try:
+    with _refused(f"params.{name}: {value!r:.80} does not describe a valid object"):
         if tag == "__tuple__" and isinstance(inner, list) and all(
             isinstance(v, (int, float)) and not isinstance(v, bool) for v in inner
         ):
@@ -140,12 +156,6 @@ def _decode_param(name: str, value: Any, arrays: dict[str, np.ndarray]) -> Any:
             return from_description(inner)
         if tag == "__array__" and inner == f"param/{name}" and inner in arrays:
             return np.array(arrays[inner])
-    except (InvalidParameterError, CapacityError, TypeError, ValueError, KeyError,
-            IndexError, AttributeError) as exc:
-        raise StoreError(
-            f"params.{name}: {value!r:.80} does not describe a valid object "
-            f"({type(exc).__name__}: {exc})."
-        ) from None
     raise StoreError(f"params.{name}: unknown parameter encoding {value!r:.80}.")
 
 
@@ -385,12 +395,15 @@ def _validated_state(
                                          if _base_kind(k) in _SCALAR_KINDS})
     require(not undeclared, f"scalars.{undeclared[0] if undeclared else ''}",
              f"is not declared saved state of {type(agent).__name__}; refused.")
+    # A held transition's action indexes the value table: one column for state values.
+    columns = 1 if "state_values" in map(_base_kind, fields.values()) else n_actions
     values: dict[str, Any] = {}
     for name, kind in fields.items():
         base = _base_kind(kind)
         if base in _SCALAR_KINDS:
             require(name in scalars, f"scalars.{name}", "missing; the file is incomplete.")
-            values[name] = _check_scalar(name, base, scalars[name], n_states, n_actions)
+            width = columns if base == "held_transition" else n_actions
+            values[name] = _check_scalar(name, base, scalars[name], n_states, width)
     for name, kind in fields.items():
         if _base_kind(kind) in _ARRAY_KINDS:
             bound_name = kind.partition("<=")[2]
@@ -413,7 +426,7 @@ def _apply(agent: Any, values: dict[str, Any], extra: Any) -> None:
     if extra is not None:
         try:
             agent._set_extra_state(extra)
-        except (TypeError, ValueError, KeyError, IndexError, AttributeError) as exc:
+        except _BUILD_ERRORS as exc:
             agent.rng.bit_generator.state = old_rng
             raise StoreError(
                 f"extra: the saved {type(agent).__name__} model state is malformed "
@@ -432,14 +445,8 @@ def build(meta: dict[str, Any], arrays: dict[str, np.ndarray],
     cls = _learner_class(meta["class"], classes)
     _check_sizes(cls, meta, arrays, max_bytes)
     params = {k: _decode_param(k, v, arrays) for k, v in meta["params"].items()}
-    try:
+    with _refused(f"params: a {cls.__name__} cannot be built from the saved parameters"):
         agent = cls(**params)
-    except (InvalidParameterError, CapacityError, TypeError, ValueError, AttributeError,
-            KeyError, IndexError) as exc:
-        raise StoreError(
-            f"params: a {cls.__name__} cannot be built from the saved parameters "
-            f"({type(exc).__name__}: {exc})."
-        ) from None
     missing = sorted(set(agent.get_params()) - set(params))
     require(not missing, f"params.{missing[0] if missing else ''}",
              "missing; the file is incomplete (a default is never assumed).")
