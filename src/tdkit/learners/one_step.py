@@ -161,8 +161,10 @@ class ExpectedSarsa(TabularAgent):
 
     Parameters
     ----------
-    n_states, n_actions, gamma, step_size, exploration, initial_value, seed
+    n_states, n_actions, gamma, step_size, initial_value, seed
         As for :class:`QLearning`; so are ``state_encoder`` and ``action_encoder``.
+    exploration : float, Schedule or Exploration, default 0.1
+        The behaviour policy, and the :math:`\pi` the target averages over.
 
     References
     ----------

@@ -178,14 +178,9 @@ class DynaQPlus(DynaQ):
 
     Parameters
     ----------
-    n_states, n_actions, gamma, step_size, exploration, initial_value, seed
-        As for :class:`~tdkit.QLearning`; so are ``state_encoder`` and
-        ``action_encoder``.
-    planning_steps : int, default 5
-        Simulated updates after each real step, ``>= 0``.
-    model : {"last", "counts"}, default "last"
-        Deterministic last-outcome model, or outcome counts with mean
-        rewards for stochastic environments.
+    n_states, n_actions, planning_steps, model, gamma, step_size, exploration
+        As for :class:`DynaQ`; so are ``initial_value``, ``seed``,
+        ``state_encoder`` and ``action_encoder``.
     kappa : float, default 1e-3
         Bonus weight :math:`\kappa \ge 0` (``0`` gives Dyna-Q's updates,
         with untried actions also planned).
@@ -294,10 +289,12 @@ class PrioritizedSweeping(_PlanningLearner):
         As for :class:`~tdkit.QLearning`; so are ``state_encoder`` and
         ``action_encoder``.
     planning_steps : int, default 5
-        Simulated updates after each real step, ``>= 0``.
+        Most planning updates after each real step, ``>= 0`` (fewer when
+        the queue empties).
     model : {"last", "counts"}, default "last"
-        Deterministic last-outcome model, or outcome counts with mean
-        rewards for stochastic environments.
+        Sample updates towards the last outcome of each pair, or expected
+        updates over outcome counts and mean rewards (stochastic
+        environments).
     threshold : float, default 1e-4
         Smallest priority that enters the queue, ``>= 0``.
 
