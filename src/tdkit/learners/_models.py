@@ -50,6 +50,9 @@ class Outcome(NamedTuple):
     next_mask: np.ndarray | None
 
 
+_new_outcome = tuple.__new__  # builds an Outcome without the Python-level __new__ (hot path)
+
+
 class _PairIndex:
     """Observed states and, per state, the actions taken there (insertion order)."""
 
@@ -319,12 +322,15 @@ class CountsModel(_Model):
         # (s, a) -> {(s2, terminated): [count, mean reward, latest mask]}, and total counts
         self._table: dict[tuple[int, int], dict[tuple[int, bool], list]] = {}
         self._totals: dict[tuple[int, int], int] = {}
+        # (s, a) -> its outcomes as built by ``outcomes``, until (s, a) is recorded again
+        self._outcomes: dict[tuple[int, int], list[Outcome]] = {}
 
     def _update(
         self, key: tuple[int, int], per_pair: dict[tuple[int, bool], list] | None, r: float,
         s2: int, terminated: bool, mask: np.ndarray | None,
     ) -> None:
         """Count the outcome and update its mean reward incrementally."""
+        self._outcomes.pop(key, None)
         if per_pair is None:
             per_pair = self._table[key] = {}
             self._totals[key] = 0
@@ -345,17 +351,24 @@ class CountsModel(_Model):
         for (s2, terminated), (count, mean_r, mask) in self._table[key].items():
             u -= count
             if u < 0:
-                return Outcome(count / total, s2, mean_r, terminated, mask)
-        return Outcome(count / total, s2, mean_r, terminated, mask)  # pragma: no cover - rounding
+                return _new_outcome(Outcome, (count / total, s2, mean_r, terminated, mask))
+        return _new_outcome(Outcome, (count / total, s2, mean_r, terminated, mask))  # rounding
 
     def outcomes(self, s: int, a: int) -> list[Outcome]:
-        """Every outcome seen from ``(s, a)``, with its frequency and mean reward."""
+        """Every outcome seen from ``(s, a)``, with its frequency and mean reward.
+
+        The list is kept until ``(s, a)`` is recorded again (prioritized
+        sweeping asks for it far more often): read it, do not change it.
+        """
         key = (s, a)
-        total = self._totals[key]
-        return [
-            Outcome(count / total, s2, mean_r, terminated, mask)
-            for (s2, terminated), (count, mean_r, mask) in self._table[key].items()
-        ]
+        found = self._outcomes.get(key)
+        if found is None:
+            total = self._totals[key]
+            found = self._outcomes[key] = [
+                _new_outcome(Outcome, (count / total, s2, mean_r, terminated, mask))
+                for (s2, terminated), (count, mean_r, mask) in self._table[key].items()
+            ]
+        return found
 
     @staticmethod
     def _row_to_json(key: tuple[int, int], outcomes: dict[tuple[int, bool], list]) -> list:
@@ -386,6 +399,7 @@ class CountsModel(_Model):
         self._set_index_state(state)
         self._table = {}
         self._totals = {}
+        self._outcomes = {}
         for s, a, outcomes in state["table"]:
             key = (int(s), int(a))
             self._table[key] = {
