@@ -17,16 +17,7 @@ from hypothesis import strategies as st
 
 import tdkit
 from tdkit._errors import InvalidParameterError
-from tdkit._greedy import (
-    ActionSets,
-    greedy_action,
-    greedy_index,
-    greedy_pick,
-    greedy_pick_rows,
-    masked_max,
-    row_max,
-)
-from tdkit.learners import _targets
+from tdkit._greedy import ActionSets, greedy_action, greedy_index, masked_max, row_max
 
 # Few distinct values, so ties are common.
 rows = st.integers(1, 7).flatmap(
@@ -53,15 +44,6 @@ def test_pure_python_greedy_equals_numpy_greedy_draw_for_draw(row, seed, data):
 def test_greedy_index_refuses_a_nan_maximum():
     with pytest.raises(FloatingPointError, match="NaN"):
         greedy_index((float("nan"), 1.0), None, lambda: 0.0)
-
-
-def test_greedy_index_refuses_nan_among_ties_and_shares_the_tie_rule_of_the_targets():
-    nan = float("nan")
-    with pytest.raises(FloatingPointError, match="NaN"):
-        greedy_index((1.0, nan, 1.0), None, lambda: 0.0)  # ties, so NaN is seen
-    # One definition of the tie rule: the targets' and the kernels' argmax is the kernel's.
-    assert _targets.greedy_index is greedy_pick
-    assert _targets.greedy_index_rows is greedy_pick_rows
 
 
 def test_action_sets_check_each_mask_once_and_accept_integer_masks():
