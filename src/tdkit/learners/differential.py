@@ -68,6 +68,7 @@ from ..exploration import Exploration
 from ..schedules import Schedule
 from ..tables import InitialValue
 from ._commit import CommitsNextAction
+from ._targets import sampled_value
 from .prediction import _PolicyLearner
 
 __all__ = ["DifferentialQLearning", "DifferentialSarsa", "DifferentialTD"]
@@ -77,11 +78,13 @@ r"""Default :math:`\eta` (``reward_step_size``)."""
 
 
 class _AverageReward:
-    """What the three differential learners share: the average, the restart, no discount.
+    r"""What the three differential learners share: the average, the restart, no discount.
 
     Put it first in the bases. Subclasses call :meth:`_init_average` after the
-    base constructor and implement :meth:`_next_value` (the bootstrap value of
-    a transition that did not terminate) and :meth:`_restart_value`.
+    base constructor and implement :meth:`_restart_value` and, as the trace
+    and prediction learners do, ``_next_value(s2, next_mask, terminated,
+    truncated)``: :math:`\hat v(S_{t+1})`, or 0 after ``terminated`` (when the
+    update waits for the next start state instead).
     """
 
     #: Read by :meth:`tdkit.TabularAgent.for_env`: no discount is taken from the env.
@@ -114,14 +117,10 @@ class _AverageReward:
     def _learn(self, transition: Transition) -> tuple[float, ...]:
         s, a, r, s2, terminated, truncated, next_mask = transition
         head = () if self._restart is None else self._close_restart(s, a)
+        v_next = self._next_value(s2, next_mask, terminated, truncated)
         if terminated:
             return head + self._hold_restart(s, a, r)
-        target = r - self.average_reward + self._next_value(s2, next_mask, truncated)
-        return (*head, self._differential_step(s, a, target))
-
-    def _next_value(self, s2: int, next_mask: np.ndarray | None, truncated: bool) -> float:
-        r""":math:`\hat v(S_{t+1})` for a transition into ``s2`` that did not terminate."""
-        raise NotImplementedError
+        return (*head, self._differential_step(s, a, r - self.average_reward + v_next))
 
     def _differential_step(self, s: int, a: int, target: float) -> float:
         r"""The shared TD step to ``target``, then :math:`\bar R \mathrel{+}= \eta\alpha\delta`.
@@ -259,8 +258,10 @@ class DifferentialQLearning(_DifferentialControl):
                 self._reset_state = self._encode(obs)
         return super().act(obs, mask=mask, explore=explore)
 
-    def _next_value(self, s2: int, next_mask: np.ndarray | None, truncated: bool) -> float:
-        return masked_max(self._q[s2], next_mask)
+    def _next_value(
+        self, s2: int, next_mask: np.ndarray | None, terminated: bool, truncated: bool
+    ) -> float:
+        return 0.0 if terminated else masked_max(self._q[s2], next_mask)
 
     def _restart_value(self, s0: int, a0: int) -> float:
         mask = self._reset_mask if self._reset_state == s0 else None
@@ -311,13 +312,13 @@ class DifferentialSarsa(_DifferentialControl, CommitsNextAction, TabularAgent):
     1.0
     """
 
-    def _next_value(self, s2: int, next_mask: np.ndarray | None, truncated: bool) -> float:
-        a2 = self._next_action(s2, next_mask, truncated)
-        return self._q[s2, a2]
-
-    def _hold_restart(self, s: int, a: int, r: float) -> tuple[float, ...]:
-        self._drop_next_action()  # terminated: no next action exists
-        return super()._hold_restart(s, a, r)
+    def _next_value(
+        self, s2: int, next_mask: np.ndarray | None, terminated: bool, truncated: bool
+    ) -> float:
+        if terminated:
+            self._drop_next_action()
+            return 0.0
+        return sampled_value(self._row(s2), self._next_action(s2, next_mask, truncated))
 
     def _restart_value(self, s0: int, a0: int) -> float:
         return float(self._q[s0, a0])
@@ -400,8 +401,5 @@ class DifferentialTD(_AverageReward, _PolicyLearner):
     def _learn(self, transition: Transition) -> tuple[float, ...]:
         return super()._learn(transition._replace(action=0))  # V(s) is column 0
 
-    def _next_value(self, s2: int, next_mask: np.ndarray | None, truncated: bool) -> float:
-        return self._q[s2, 0]
-
     def _restart_value(self, s0: int, a0: int) -> float:
-        return float(self._q[s0, 0])
+        return self._next_value(s0, None, False, False)
