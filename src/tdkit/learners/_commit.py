@@ -23,6 +23,8 @@ from typing import Any, ClassVar
 
 import numpy as np
 
+from ._targets import sampled_value
+
 __all__ = ["CommitsNextAction"]
 
 
@@ -31,7 +33,8 @@ class CommitsNextAction:
 
     Put it first in the bases (``class Sarsa(CommitsNextAction, TabularAgent)``).
     Subclasses call :meth:`_next_action` when a transition does not terminate
-    and :meth:`_drop_next_action` when it does.
+    and :meth:`_drop_next_action` when it does, or use :meth:`_next_value`,
+    which does both.
     """
 
     #: ``(state, action, returned_by_act)`` or None. ``returned_by_act`` is
@@ -80,6 +83,20 @@ class CommitsNextAction:
         a2 = self._choose(s2, next_mask, True)  # type: ignore[attr-defined]
         self._committed = None if truncated else (s2, a2, False)
         return a2
+
+    def _next_value(
+        self, s2: int, next_mask: np.ndarray | None, terminated: bool, truncated: bool
+    ) -> float:
+        r""":math:`Q(S_{t+1}, A_{t+1})` with :math:`A_{t+1}` from :meth:`_next_action`.
+
+        The bootstrap hook of the trace and differential learners; after
+        ``terminated`` it drops any commitment and returns 0.
+        """
+        if terminated:
+            self._drop_next_action()
+            return 0.0
+        row = self._row(s2)  # type: ignore[attr-defined]
+        return sampled_value(row, self._next_action(s2, next_mask, truncated))
 
     def _drop_next_action(self) -> None:
         """Forget any commitment (the episode terminated)."""

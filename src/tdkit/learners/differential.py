@@ -68,7 +68,6 @@ from ..exploration import Exploration
 from ..schedules import Schedule
 from ..tables import InitialValue
 from ._commit import CommitsNextAction
-from ._targets import sampled_value
 from .prediction import _PolicyLearner
 
 __all__ = ["DifferentialQLearning", "DifferentialSarsa", "DifferentialTD"]
@@ -311,14 +310,6 @@ class DifferentialSarsa(_DifferentialControl, CommitsNextAction, TabularAgent):
     >>> agent.average_reward     # 0.5 * 0.5 * 4
     1.0
     """
-
-    def _next_value(
-        self, s2: int, next_mask: np.ndarray | None, terminated: bool, truncated: bool
-    ) -> float:
-        if terminated:
-            self._drop_next_action()
-            return 0.0
-        return sampled_value(self._row(s2), self._next_action(s2, next_mask, truncated))
 
     def _restart_value(self, s0: int, a0: int) -> float:
         return float(self._q[s0, a0])

@@ -22,7 +22,7 @@ from __future__ import annotations
 import numpy as np
 
 from ._commit import CommitsNextAction
-from ._targets import greedy_max, sampled_value
+from ._targets import greedy_max
 from ._traces_math import TraceLearner
 
 __all__ = ["SarsaLambda", "WatkinsQLambda"]
@@ -89,14 +89,6 @@ class SarsaLambda(CommitsNextAction, TraceLearner):
     >>> agent.table[:2, 0].tolist()
     [0.5, 0.5]
     """
-
-    def _next_value(
-        self, s2: int, next_mask: np.ndarray | None, terminated: bool, truncated: bool
-    ) -> float:
-        if terminated:
-            self._drop_next_action()
-            return 0.0
-        return sampled_value(self._row(s2), self._next_action(s2, next_mask, truncated))
 
 
 class WatkinsQLambda(TraceLearner):
