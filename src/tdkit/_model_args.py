@@ -15,10 +15,10 @@ import numpy as np
 from ._errors import InvalidParameterError
 from .envs.finite import FiniteMDP
 
-__all__ = ["_check_allowed", "_check_mdp", "_check_values", "_policy_probabilities"]
+__all__ = ["_require_allowed", "_require_mdp", "_require_values", "_policy_probabilities"]
 
 
-def _check_mdp(owner: str, mdp: Any) -> FiniteMDP:
+def _require_mdp(owner: str, mdp: Any) -> FiniteMDP:
     if not isinstance(mdp, FiniteMDP):
         raise InvalidParameterError(
             f"{owner}: mdp must be a tdkit.FiniteMDP; got {type(mdp).__name__}. "
@@ -27,7 +27,7 @@ def _check_mdp(owner: str, mdp: Any) -> FiniteMDP:
     return mdp
 
 
-def _check_values(owner: str, name: str, values: Any, shape: tuple[int, ...]) -> np.ndarray:
+def _require_values(owner: str, name: str, values: Any, shape: tuple[int, ...]) -> np.ndarray:
     array = np.asarray(values, dtype=np.float64)
     if array.shape != shape:
         raise InvalidParameterError(
@@ -58,9 +58,9 @@ def _policy_probabilities(owner: str, mdp: FiniteMDP, policy: Any) -> np.ndarray
             )
         probs = np.zeros((n, m))
         probs[np.arange(n), array] = 1.0
-        return _check_allowed(owner, mdp, probs)
+        return _require_allowed(owner, mdp, probs)
     if array.shape == (n, m):
-        probs = _check_values(owner, "policy", array, (n, m))
+        probs = _require_values(owner, "policy", array, (n, m))
         if (probs < 0).any():
             s, a = (int(i) for i in np.argwhere(probs < 0)[0])
             raise InvalidParameterError(
@@ -75,14 +75,14 @@ def _policy_probabilities(owner: str, mdp: FiniteMDP, policy: Any) -> np.ndarray
                 f"{owner}: policy[{s}, :] sums to {float(sums[s])!r}; action probabilities of "
                 "each state must sum to 1."
             )
-        return _check_allowed(owner, mdp, probs / sums[:, None])
+        return _require_allowed(owner, mdp, probs / sums[:, None])
     raise InvalidParameterError(
         f"{owner}: policy must have shape (S,) = ({n},) (action indices) or (S, A) = "
         f"({n}, {m}) (probabilities); got shape {array.shape}."
     )
 
 
-def _check_allowed(owner: str, mdp: FiniteMDP, probs: np.ndarray) -> np.ndarray:
+def _require_allowed(owner: str, mdp: FiniteMDP, probs: np.ndarray) -> np.ndarray:
     """Refuse a policy that gives a masked action positive probability."""
     masks = mdp.masks
     if masks is not None:

@@ -35,7 +35,7 @@ from typing import Any, NamedTuple
 import numpy as np
 
 from ._errors import InvalidParameterError, TdkitError
-from ._model_args import _check_mdp, _check_values, _policy_probabilities
+from ._model_args import _policy_probabilities, _require_mdp, _require_values
 from ._progress import progress_bar
 from ._validation import require_in_range, require_positive_int
 from .envs.finite import FiniteMDP
@@ -224,8 +224,8 @@ def action_values(mdp: FiniteMDP, v: Any) -> np.ndarray:
     array([[1., 1.],
            [0., 0.]])
     """
-    mdp = _check_mdp("action_values", mdp)
-    return _action_values(mdp, _check_values("action_values", "v", v, (mdp.n_states,)))
+    mdp = _require_mdp("action_values", mdp)
+    return _action_values(mdp, _require_values("action_values", "v", v, (mdp.n_states,)))
 
 
 def bellman_optimality_operator(mdp: FiniteMDP, v: Any) -> np.ndarray:
@@ -238,8 +238,8 @@ def bellman_optimality_operator(mdp: FiniteMDP, v: Any) -> np.ndarray:
     -------
     ndarray, shape (S,)
     """
-    mdp = _check_mdp("bellman_optimality_operator", mdp)
-    v = _check_values("bellman_optimality_operator", "v", v, (mdp.n_states,))
+    mdp = _require_mdp("bellman_optimality_operator", mdp)
+    v = _require_values("bellman_optimality_operator", "v", v, (mdp.n_states,))
     return _look_ahead(mdp, v).max(axis=1)
 
 
@@ -251,8 +251,8 @@ def bellman_expectation_operator(mdp: FiniteMDP, v: Any, policy: Any) -> np.ndar
     ndarray, shape (S,)
     """
     owner = "bellman_expectation_operator"
-    mdp = _check_mdp(owner, mdp)
-    v = _check_values(owner, "v", v, (mdp.n_states,))
+    mdp = _require_mdp(owner, mdp)
+    v = _require_values(owner, "v", v, (mdp.n_states,))
     pi = _policy_probabilities(owner, mdp, policy)
     return (pi * _action_values(mdp, v)).sum(axis=1)
 
@@ -296,11 +296,11 @@ def bellman_residual(mdp: FiniteMDP, q: Any, policy: Any = None) -> float:
     0.5
     """
     owner = "bellman_residual"
-    mdp = _check_mdp(owner, mdp)
+    mdp = _require_mdp(owner, mdp)
     array = np.asarray(q, dtype=np.float64)
     pi = None if policy is None else _policy_probabilities(owner, mdp, policy)
     if array.ndim == 1:
-        v = _check_values(owner, "v", array, (mdp.n_states,))
+        v = _require_values(owner, "v", array, (mdp.n_states,))
         if pi is None:
             target = _look_ahead(mdp, v).max(axis=1)
         else:
@@ -310,7 +310,7 @@ def bellman_residual(mdp: FiniteMDP, q: Any, policy: Any = None) -> float:
     masks = mdp.masks
     if masks is not None and array.shape == shape:
         array = np.where(masks, array, 0.0)  # masked entries (e.g. -inf) are not compared
-    q = _check_values(owner, "q", array, shape)
+    q = _require_values(owner, "q", array, shape)
     if pi is None:
         u = (q if masks is None else np.where(masks, q, _NEG_INF)).max(axis=1)
     else:
@@ -361,7 +361,7 @@ def greedy_policy(q: Any, *, atol: float = 1e-9) -> GreedyPolicy:
         raise InvalidParameterError(
             f"{owner}: q[{s}, :] is -inf everywhere; every state needs a finite action value."
         )
-    _check_values(owner, "q", np.where(excluded, 0.0, array), array.shape)
+    _require_values(owner, "q", np.where(excluded, 0.0, array), array.shape)
     atol = require_in_range(owner, "atol", atol, 0.0, math.inf)
     maximisers = array >= array.max(axis=1, keepdims=True) - atol
     return GreedyPolicy(np.argmax(maximisers, axis=1), maximisers)
@@ -724,7 +724,7 @@ def evaluate_policy(
     array([0.  , 0.25, 0.5 , 0.75, 0.  ])
     """
     owner = "evaluate_policy"
-    mdp = _check_mdp(owner, mdp)
+    mdp = _require_mdp(owner, mdp)
     pi = _policy_probabilities(owner, mdp, policy)
     if method not in ("auto", "direct", "sparse", "iterative"):
         raise InvalidParameterError(
@@ -775,7 +775,7 @@ def _finish(
     )
 
 
-def _check_exploration(owner: str, exploration: Any) -> float:
+def _require_exploration(owner: str, exploration: Any) -> float:
     if isinstance(exploration, bool) or not isinstance(exploration, numbers.Real):
         raise InvalidParameterError(
             f"{owner}: exploration must be a float in [0, 1] (the ε of ε-greedy); got "
@@ -953,16 +953,16 @@ def value_iteration(
     (1.8, 'epsilon-greedy(0.2)')
     """
     owner = "value_iteration"
-    mdp = _check_mdp(owner, mdp)
+    mdp = _require_mdp(owner, mdp)
     tol = require_in_range(owner, "tol", tol, 0.0, math.inf, low_open=True)
-    epsilon = _check_exploration(owner, exploration)
+    epsilon = _require_exploration(owner, exploration)
     cap = DEFAULT_MAX_ITERATIONS if max_iterations is None else max_iterations
     cap = require_positive_int(owner, "max_iterations", cap)
     gamma = mdp.gamma
     v = (
         np.zeros(mdp.n_states)
         if v0 is None
-        else _check_values(owner, "v0", v0, (mdp.n_states,)).copy()
+        else _require_values(owner, "v0", v0, (mdp.n_states,)).copy()
     )
     if gamma == 1.0:
         _require_terminal_reachable(owner, mdp)
@@ -1046,10 +1046,10 @@ def policy_iteration(
     -3
     """
     owner = "policy_iteration"
-    mdp = _check_mdp(owner, mdp)
+    mdp = _require_mdp(owner, mdp)
     max_iterations = require_positive_int(owner, "max_iterations", max_iterations)
     atol = require_in_range(owner, "atol", atol, 0.0, math.inf)
-    epsilon = _check_exploration(owner, exploration)
+    epsilon = _require_exploration(owner, exploration)
     masks = mdp.masks
     if initial_policy is None:
         if mdp.gamma == 1.0:

@@ -73,7 +73,7 @@ from typing import Any
 import numpy as np
 
 from ._errors import InvalidParameterError
-from ._model_args import _check_mdp, _check_values
+from ._model_args import _require_mdp, _require_values
 from ._validation import require_in_range, require_positive_int
 from .dp import (
     DEFAULT_MAX_ITERATIONS,
@@ -81,10 +81,10 @@ from .dp import (
     Solution,
     _allowed_counts,
     _backup,
-    _check_exploration,
     _finish,
     _look_ahead,
     _progress_bar,
+    _require_exploration,
     policy_iteration,
     value_iteration,
 )
@@ -346,13 +346,13 @@ def solve(
     True
     """
     owner = "solve"
-    mdp = _check_mdp(owner, mdp)
+    mdp = _require_mdp(owner, mdp)
     if method not in METHODS:
         raise InvalidParameterError(
             f"{owner}: method must be one of {', '.join(map(repr, METHODS))}; got {method!r}."
         )
     tol = require_in_range(owner, "tol", tol, 0.0, math.inf, low_open=True)
-    epsilon = _check_exploration(owner, exploration)
+    epsilon = _require_exploration(owner, exploration)
     cap = DEFAULT_MAX_ITERATIONS if max_iterations is None else max_iterations
     cap = require_positive_int(owner, "max_iterations", cap)
     evaluation_sweeps = require_positive_int(owner, "evaluation_sweeps", evaluation_sweeps)
@@ -388,7 +388,7 @@ def solve(
             f"{owner}: method={method!r} bounds its error through the discount and needs "
             "gamma < 1; got gamma=1. Use method='policy_iteration' (or 'auto')."
         )
-    u = np.zeros(mdp.n_states) if v0 is None else _check_values(
+    u = np.zeros(mdp.n_states) if v0 is None else _require_values(
         owner, "v0", v0, (mdp.n_states,)
     ).copy()
     u[mdp.terminal] = 0.0

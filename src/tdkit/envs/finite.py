@@ -95,14 +95,14 @@ def _as_float_array(owner: str, name: str, value: Any) -> np.ndarray:
     return array
 
 
-def _check_shape(owner: str, name: str, array: np.ndarray, expected: tuple, text: str) -> None:
+def _require_shape(owner: str, name: str, array: np.ndarray, expected: tuple, text: str) -> None:
     if array.shape != expected:
         raise InvalidParameterError(
             f"{owner}: {name} must have shape {text} = {expected}; got shape {array.shape}."
         )
 
 
-def _check_probabilities(
+def _require_probabilities(
     owner: str, name: str, probs: np.ndarray, skip_rows: np.ndarray, axis_names: str
 ) -> np.ndarray:
     """Validate probability rows along the last axis and renormalise them.
@@ -192,7 +192,7 @@ def _initial_distribution(
         start = (~terminal).astype(np.float64)
         return start / start.sum()
     start = _as_float_array(owner, "initial", initial)
-    _check_shape(owner, "initial", start, (n_states,), "(S,)")
+    _require_shape(owner, "initial", start, (n_states,), "(S,)")
     if (start < 0).any():
         s = int(np.argmax(start < 0))
         raise InvalidParameterError(
@@ -331,7 +331,7 @@ class FiniteMDP:
             )
         gamma = require_in_range(owner, "gamma", gamma, 0.0, 1.0)
         term = _terminal_mask(owner, terminal, n_states)
-        probs = _check_probabilities(owner, "P", probs, term, "next state")
+        probs = _require_probabilities(owner, "P", probs, term, "next state")
         rewards = _as_float_array(owner, "R", R)
         if rewards.shape == (n_states, n_actions, n_states):
             outcome_rewards: np.ndarray | None = rewards
@@ -450,10 +450,10 @@ class FiniteMDP:
                 f"range for {n_states} states; indices must be in [0, {n_states})."
             )
         p = _as_float_array(owner, "probs", probs)
-        _check_shape(owner, "probs", p, nxt.shape, "(S, A, K)")
+        _require_shape(owner, "probs", p, nxt.shape, "(S, A, K)")
         gamma = require_in_range(owner, "gamma", gamma, 0.0, 1.0)
         term = _terminal_mask(owner, terminal, n_states)
-        p = _check_probabilities(owner, "probs", p, term, "successor slot")
+        p = _require_probabilities(owner, "probs", p, term, "successor slot")
         r = _as_float_array(owner, "rewards", rewards)
         if r.shape == nxt.shape:
             outcome_rewards: np.ndarray | None = r

@@ -285,14 +285,14 @@ class SweepResult:
 
         Failed and missing runs are NaN.
         """
-        self._check_metric("SweepResult.scores", metric)
+        self._require_metric("SweepResult.scores", metric)
         table = np.full((len(self.settings), len(self.seeds)), np.nan)
         column = {seed: j for j, seed in enumerate(self.seeds)}
         for run in self.runs:
             table[run.setting_index, column[run.seed]] = getattr(run, metric)
         return table
 
-    def _check_metric(self, owner: str, metric: str) -> None:
+    def _require_metric(self, owner: str, metric: str) -> None:
         if metric not in METRICS:
             raise InvalidParameterError(
                 f"{owner}: metric must be one of {', '.join(map(repr, METRICS))}; got {metric!r}."
@@ -336,7 +336,7 @@ class SweepResult:
             (:func:`tdkit.stats.summarize_scores`).
         """
         owner = "SweepResult.summary"
-        self._check_metric(owner, metric)
+        self._require_metric(owner, metric)
         confidence = require_in_range(owner, "confidence", confidence, 0.0, 1.0,
                                     low_open=True, high_open=True)
         n_resamples = require_positive_int(owner, "n_resamples", n_resamples)
