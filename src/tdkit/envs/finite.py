@@ -132,6 +132,36 @@ def _require_probabilities(
     return probs / sums[:, :, None]
 
 
+def _reward_arrays(
+    owner: str, name: str, rewards: Any, probs: np.ndarray, terminal: np.ndarray, last: str
+) -> tuple[np.ndarray, np.ndarray | None]:
+    """``(expected (S, A), outcome rewards or None)`` from ``rewards`` of shape (S, A) or
+    ``probs.shape``; terminal states get reward 0.
+
+    ``probs`` (S, A, X) holds the outcome probabilities (X next states or
+    successor slots, named ``last`` in messages); the expected reward is
+    their probability-weighted sum over the last axis.
+    """
+    r = _as_float_array(owner, name, rewards)
+    n_states, n_actions = probs.shape[:2]
+    if r.shape == probs.shape:
+        outcome: np.ndarray | None = r
+        expected = np.einsum("sax,sax->sa", probs, r)
+    elif r.shape == (n_states, n_actions):
+        outcome, expected = None, r
+    else:
+        raise InvalidParameterError(
+            f"{owner}: {name} must have shape (S, A) = {(n_states, n_actions)} or "
+            f"(S, A, {last}) = {probs.shape}; got shape {r.shape}."
+        )
+    if terminal.any():
+        expected = expected.copy()
+        expected[terminal] = 0.0
+        if outcome is not None:
+            outcome[terminal] = 0.0
+    return expected, outcome
+
+
 def _terminal_mask(owner: str, terminal: Any, n_states: int) -> np.ndarray:
     if terminal is None:
         return np.zeros(n_states, dtype=bool)
@@ -332,28 +362,13 @@ class FiniteMDP:
         gamma = require_in_range(owner, "gamma", gamma, 0.0, 1.0)
         term = _terminal_mask(owner, terminal, n_states)
         probs = _require_probabilities(owner, "P", probs, term, "next state")
-        rewards = _as_float_array(owner, "R", R)
-        if rewards.shape == (n_states, n_actions, n_states):
-            outcome_rewards: np.ndarray | None = rewards
-            expected = np.einsum("sat,sat->sa", probs, rewards)
-        elif rewards.shape == (n_states, n_actions):
-            outcome_rewards = None
-            expected = rewards
-        else:
-            raise InvalidParameterError(
-                f"{owner}: R must have shape (S, A) = {(n_states, n_actions)} or "
-                f"(S, A, S) = {(n_states, n_actions, n_states)}; got shape {rewards.shape}."
-            )
+        expected, outcome_rewards = _reward_arrays(owner, "R", R, probs, term, "S")
         start = _initial_distribution(owner, initial, term)
         allowed = _action_masks(owner, masks, (n_states, n_actions), term)
         if term.any():
             idx = np.flatnonzero(term)
             probs[idx] = 0.0
             probs[idx, :, idx] = 1.0
-            expected = expected.copy()
-            expected[idx] = 0.0
-            if outcome_rewards is not None:
-                outcome_rewards[idx] = 0.0
         self._set_common(gamma, term, start, expected, allowed)
         self._P = _readonly(probs)
         self._P_flat = probs.reshape(n_states * n_actions, n_states)
@@ -454,18 +469,7 @@ class FiniteMDP:
         gamma = require_in_range(owner, "gamma", gamma, 0.0, 1.0)
         term = _terminal_mask(owner, terminal, n_states)
         p = _require_probabilities(owner, "probs", p, term, "successor slot")
-        r = _as_float_array(owner, "rewards", rewards)
-        if r.shape == nxt.shape:
-            outcome_rewards: np.ndarray | None = r
-            expected = np.einsum("sak,sak->sa", p, r)
-        elif r.shape == (n_states, n_actions):
-            outcome_rewards = None
-            expected = r
-        else:
-            raise InvalidParameterError(
-                f"{owner}: rewards must have shape (S, A) = {(n_states, n_actions)} or "
-                f"(S, A, K) = {nxt.shape}; got shape {r.shape}."
-            )
+        expected, outcome_rewards = _reward_arrays(owner, "rewards", rewards, p, term, "K")
         start = _initial_distribution(owner, initial, term)
         allowed = _action_masks(owner, masks, (n_states, n_actions), term)
         nxt = np.array(nxt, dtype=np.intp)
@@ -474,10 +478,6 @@ class FiniteMDP:
             nxt[idx] = idx[:, None, None]
             p[idx] = 0.0
             p[idx, :, 0] = 1.0
-            expected = expected.copy()
-            expected[idx] = 0.0
-            if outcome_rewards is not None:
-                outcome_rewards[idx] = 0.0
         return cls._build_sparse(gamma, term, start, expected, nxt, p, outcome_rewards, allowed)
 
     @classmethod
