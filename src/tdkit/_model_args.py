@@ -13,6 +13,7 @@ from typing import Any
 import numpy as np
 
 from ._errors import InvalidParameterError
+from ._validation import require_float_array, require_probability_rows
 from .envs.finite import FiniteMDP
 
 __all__ = ["_require_allowed", "_require_mdp", "_require_values", "_policy_probabilities"]
@@ -28,7 +29,7 @@ def _require_mdp(owner: str, mdp: Any) -> FiniteMDP:
 
 
 def _require_values(owner: str, name: str, values: Any, shape: tuple[int, ...]) -> np.ndarray:
-    array = np.asarray(values, dtype=np.float64)
+    array = require_float_array(owner, name, values)
     if array.shape != shape:
         raise InvalidParameterError(
             f"{owner}: {name} must have shape {shape}; got shape {array.shape}."
@@ -61,21 +62,7 @@ def _policy_probabilities(owner: str, mdp: FiniteMDP, policy: Any) -> np.ndarray
         return _require_allowed(owner, mdp, probs)
     if array.shape == (n, m):
         probs = _require_values(owner, "policy", array, (n, m))
-        if (probs < 0).any():
-            s, a = (int(i) for i in np.argwhere(probs < 0)[0])
-            raise InvalidParameterError(
-                f"{owner}: policy[{s}, {a}] = {float(probs[s, a])!r} is negative; action "
-                "probabilities must be >= 0."
-            )
-        sums = probs.sum(axis=1)
-        off = np.abs(sums - 1.0) > 1e-8
-        if off.any():
-            s = int(np.argmax(off))
-            raise InvalidParameterError(
-                f"{owner}: policy[{s}, :] sums to {float(sums[s])!r}; action probabilities of "
-                "each state must sum to 1."
-            )
-        return _require_allowed(owner, mdp, probs / sums[:, None])
+        return _require_allowed(owner, mdp, require_probability_rows(owner, "policy", probs))
     raise InvalidParameterError(
         f"{owner}: policy must have shape (S,) = ({n},) (action indices) or (S, A) = "
         f"({n}, {m}) (probabilities); got shape {array.shape}."

@@ -26,15 +26,18 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from .._errors import EnvironmentProtocolError, InvalidParameterError
-from .._validation import require_in_range
+from .._validation import (
+    PROBABILITY_TOLERANCE,
+    require_float_array,
+    require_in_range,
+    require_probability_rows,
+)
 
 if TYPE_CHECKING:
     from .model_env import FiniteMDPEnv
 
 __all__ = ["FiniteMDP"]
 
-_PROB_ATOL = 1e-8
-"""Allowed deviation of a probability row's sum from 1 (then renormalised)."""
 
 _REMOVAL = "0.3.0"
 """Version that removes the deprecated keyword spellings."""
@@ -79,12 +82,7 @@ def _readonly(array: np.ndarray) -> np.ndarray:
 
 
 def _as_float_array(owner: str, name: str, value: Any) -> np.ndarray:
-    try:
-        array = np.array(value, dtype=np.float64)
-    except (TypeError, ValueError) as exc:
-        raise InvalidParameterError(
-            f"{owner}: {name} must be an array of real numbers; got {value!r:.80} ({exc})."
-        ) from None
+    array = require_float_array(owner, name, value, copy=True)
     bad = ~np.isfinite(array)
     if bad.any():
         index = tuple(int(i) for i in np.argwhere(bad)[0])
@@ -100,36 +98,6 @@ def _require_shape(owner: str, name: str, array: np.ndarray, expected: tuple, te
         raise InvalidParameterError(
             f"{owner}: {name} must have shape {text} = {expected}; got shape {array.shape}."
         )
-
-
-def _require_probabilities(
-    owner: str, name: str, probs: np.ndarray, skip_rows: np.ndarray, axis_names: str
-) -> np.ndarray:
-    """Validate probability rows along the last axis and renormalise them.
-
-    ``skip_rows`` (S,) marks states (terminal) whose rows are not checked.
-    ``axis_names`` names the last index in messages ("next state" or "successor").
-    """
-    negative = probs < 0
-    negative[skip_rows] = False
-    if negative.any():
-        s, a, k = (int(i) for i in np.argwhere(negative)[0])
-        raise InvalidParameterError(
-            f"{owner}: {name}[{s}, {a}, {k}] = {float(probs[s, a, k])!r} is negative "
-            f"(state {s}, action {a}, {axis_names} {k}); probabilities must be >= 0."
-        )
-    sums = probs.sum(axis=2)
-    off = np.abs(sums - 1.0) > _PROB_ATOL
-    off[skip_rows] = False
-    if off.any():
-        s, a = (int(i) for i in np.argwhere(off)[0])
-        raise InvalidParameterError(
-            f"{owner}: {name}[{s}, {a}, :] (state {s}, action {a}) sums to {float(sums[s, a])!r}; "
-            f"every row must sum to 1 (tolerance {_PROB_ATOL:g}). Normalise it, e.g. "
-            f"{name} = {name} / {name}.sum(axis=-1, keepdims=True)."
-        )
-    sums[skip_rows] = 1.0
-    return probs / sums[:, :, None]
 
 
 def _reward_arrays(
@@ -230,7 +198,7 @@ def _initial_distribution(
             "has entries >= 0 that sum to 1."
         )
     total = start.sum()
-    if abs(total - 1.0) > _PROB_ATOL:
+    if abs(total - 1.0) > PROBABILITY_TOLERANCE:
         raise InvalidParameterError(
             f"{owner}: initial sums to {float(total)!r}; it must sum to 1. "
             "Normalise it, e.g. initial = initial / initial.sum()."
@@ -361,7 +329,9 @@ class FiniteMDP:
             )
         gamma = require_in_range(owner, "gamma", gamma, 0.0, 1.0)
         term = _terminal_mask(owner, terminal, n_states)
-        probs = _require_probabilities(owner, "P", probs, term, "next state")
+        probs = require_probability_rows(
+            owner, "P", probs, skip=term, axes=("state", "action", "next state")
+        )
         expected, outcome_rewards = _reward_arrays(owner, "R", R, probs, term, "S")
         start = _initial_distribution(owner, initial, term)
         allowed = _action_masks(owner, masks, (n_states, n_actions), term)
@@ -468,7 +438,9 @@ class FiniteMDP:
         _require_shape(owner, "probs", p, nxt.shape, "(S, A, K)")
         gamma = require_in_range(owner, "gamma", gamma, 0.0, 1.0)
         term = _terminal_mask(owner, terminal, n_states)
-        p = _require_probabilities(owner, "probs", p, term, "successor slot")
+        p = require_probability_rows(
+            owner, "probs", p, skip=term, axes=("state", "action", "successor slot")
+        )
         expected, outcome_rewards = _reward_arrays(owner, "rewards", rewards, p, term, "K")
         start = _initial_distribution(owner, initial, term)
         allowed = _action_masks(owner, masks, (n_states, n_actions), term)
