@@ -29,6 +29,7 @@ import math
 import numbers
 import warnings
 from collections.abc import Callable
+from contextlib import AbstractContextManager, nullcontext
 from dataclasses import dataclass
 from typing import Any, NamedTuple
 
@@ -540,9 +541,11 @@ def _evaluate_krylov(chain: FiniteMDP, tol: float) -> tuple[np.ndarray, bool] | 
     return v, met
 
 
-def _progress_bar(owner: str, enabled: bool, total: int) -> Any:
-    """A bar counting sweeps (:func:`tdkit._progress.progress_bar`), or None."""
-    return progress_bar(owner, total, enabled, unit="sweep", desc=owner)
+def _progress_bar(owner: str, enabled: bool, total: int) -> AbstractContextManager[Any]:
+    """``with _progress_bar(...) as bar``: a bar counting sweeps
+    (:func:`tdkit._progress.progress_bar`), closed on exit, or None when not ``enabled``."""
+    bar = progress_bar(owner, total, enabled, unit="sweep", desc=owner)
+    return nullcontext() if bar is None else bar
 
 
 def _fixed_point(
@@ -571,8 +574,7 @@ def _fixed_point(
     """
     best_change, best_sweep = math.inf, 0
     change = math.inf
-    bar = _progress_bar(owner, progress, max_iterations)
-    try:
+    with _progress_bar(owner, progress, max_iterations) as bar:
         for sweep in range(1, max_iterations + 1):
             new = step(v)
             change = float(np.max(np.abs(new - v), initial=0.0))
@@ -603,9 +605,6 @@ def _fixed_point(
                     stacklevel=3,
                 )
                 return v, sweep, change
-    finally:
-        if bar is not None:
-            bar.close()
     advice = (
         "policy_iteration(mdp) or tdkit.solve(mdp) (a few exact evaluations), or raise "
         "max_iterations"
