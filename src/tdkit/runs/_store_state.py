@@ -111,6 +111,12 @@ def encoder_shape(encoded: Any) -> Any:
     return {k: v for k, v in encoded["__encoder__"].items() if k != "states"}
 
 
+_REBUILD_ERRORS = (InvalidParameterError, CapacityError, TypeError, ValueError, KeyError,
+                   IndexError, AttributeError)
+"""What rebuilding a saved object (a parameter or the learner) raises on a bad file; the
+store turns them into :class:`~tdkit.StoreError` naming the field."""
+
+
 def _decode_param(name: str, value: Any, arrays: dict[str, np.ndarray]) -> Any:
     from ..encoders import from_description
     from ..exploration import exploration_from_description
@@ -140,8 +146,7 @@ def _decode_param(name: str, value: Any, arrays: dict[str, np.ndarray]) -> Any:
             return from_description(inner)
         if tag == "__array__" and inner == f"param/{name}" and inner in arrays:
             return np.array(arrays[inner])
-    except (InvalidParameterError, CapacityError, TypeError, ValueError, KeyError,
-            IndexError, AttributeError) as exc:
+    except _REBUILD_ERRORS as exc:
         raise StoreError(
             f"params.{name}: {value!r:.80} does not describe a valid object "
             f"({type(exc).__name__}: {exc})."
@@ -434,8 +439,7 @@ def build(meta: dict[str, Any], arrays: dict[str, np.ndarray],
     params = {k: _decode_param(k, v, arrays) for k, v in meta["params"].items()}
     try:
         agent = cls(**params)
-    except (InvalidParameterError, CapacityError, TypeError, ValueError, AttributeError,
-            KeyError, IndexError) as exc:
+    except _REBUILD_ERRORS as exc:
         raise StoreError(
             f"params: a {cls.__name__} cannot be built from the saved parameters "
             f"({type(exc).__name__}: {exc})."
