@@ -142,21 +142,15 @@ def require_probability_rows(
     solver: policy[1, :] sums to 4.0; every row must sum to 1 (tolerance 1e-08). Normalise it,
     e.g. policy = policy / policy.sum(axis=-1, keepdims=True).
     """
-    negative = probs < 0
-    if skip is not None:
-        negative[skip] = False
-    if negative.any():
-        index = tuple(int(i) for i in np.argwhere(negative)[0])
+    index = _first_true(probs < 0, skip)
+    if index is not None:
         raise InvalidParameterError(
             f"{owner}: {name}{list(index)} = {float(probs[index])!r} is negative"
             f"{_named_index(axes, index)}; probabilities must be >= 0."
         )
     sums = probs.sum(axis=-1)
-    off = np.abs(sums - 1.0) > PROBABILITY_TOLERANCE
-    if skip is not None:
-        off[skip] = False
-    if off.any():
-        row = tuple(int(i) for i in np.argwhere(off)[0])
+    row = _first_true(np.abs(sums - 1.0) > PROBABILITY_TOLERANCE, skip)
+    if row is not None:
         raise InvalidParameterError(
             f"{owner}: {name}[{', '.join(map(str, row))}, :]{_named_index(axes, row)} sums to "
             f"{float(sums[row])!r}; every row must sum to 1 (tolerance "
@@ -166,6 +160,13 @@ def require_probability_rows(
     if skip is not None:
         sums[skip] = 1.0
     return probs / sums[..., None]
+
+
+def _first_true(bad: np.ndarray, skip: np.ndarray | None) -> tuple[int, ...] | None:
+    """The index of the first True entry of ``bad`` outside the rows ``skip``, or None."""
+    if skip is not None:
+        bad[skip] = False
+    return tuple(int(i) for i in np.argwhere(bad)[0]) if bad.any() else None
 
 
 def _named_index(axes: tuple[str, ...], index: tuple[int, ...]) -> str:
