@@ -23,6 +23,7 @@ from typing import Any
 import numba
 import numpy as np
 
+from ... import _greedy
 from ...envs import _successors
 from ...learners import _targets
 from ._result import BatchResult, batch_result
@@ -34,13 +35,15 @@ _CACHE = True
 """Keep compiled code in numba's on-disk cache (``__pycache__``).
 
 numba keys a cached function by its own source file and bytecode only. The
-kernel inlines the functions of ``_targets.py`` and ``_successors.py``, so it
-is built in a closure over :data:`_STAMP`, a hash of those sources: numba puts
-closure contents into the cache key, so editing them compiles afresh.
+kernel inlines the functions of ``_targets.py`` (with the tie rule it takes
+from ``_greedy.py``) and ``_successors.py``, so it is built in a closure over
+:data:`_STAMP`, a hash of those sources: numba puts closure contents into the
+cache key, so editing them compiles afresh.
 """
 
 _STAMP = int(hashlib.sha256(b"".join(
-    Path(m.__file__).read_bytes() for m in (_targets, _successors)  # type: ignore[arg-type]
+    Path(m.__file__).read_bytes()  # type: ignore[arg-type]
+    for m in (_greedy, _targets, _successors)
 )).hexdigest()[:15], 16)
 
 
