@@ -17,7 +17,7 @@ from typing import Any
 
 import numpy as np
 
-from .._errors import StoreError
+from .._errors import CapacityError, InvalidParameterError, StoreError
 from ._store_files import is_int, require
 
 __all__ = [
@@ -46,20 +46,6 @@ _SCALAR_KINDS = ("counter", "real", "commitment", "mask_map", "mask", "state_or_
 _KINDS = (*_ARRAY_KINDS, *_SCALAR_KINDS, "per_episode", "hooks")
 
 ENCODERS = ("state_encoder", "action_encoder")
-
-
-#: What building an object from a file's values may raise (InvalidParameterError and
-#: CapacityError are ValueErrors): it is refused as a StoreError, never leaked.
-_BUILD_ERRORS = (TypeError, ValueError, KeyError, IndexError, AttributeError)
-
-
-@contextmanager
-def _refused(message: str) -> Iterator[None]:
-    """Turn an error of building from saved values into ``StoreError("<message> (<error>).")``."""
-    try:
-        yield
-    except _BUILD_ERRORS as exc:
-        raise StoreError(f"{message} ({type(exc).__name__}: {exc}).") from None
 
 
 def saved_fields(cls: type) -> dict[str, str]:
@@ -125,6 +111,21 @@ def encoder_shape(encoded: Any) -> Any:
     if not isinstance(encoded, dict) or not isinstance(encoded.get("__encoder__"), dict):
         return encoded
     return {k: v for k, v in encoded["__encoder__"].items() if k != "states"}
+
+
+_REBUILD_ERRORS = (InvalidParameterError, CapacityError, TypeError, ValueError, KeyError,
+                   IndexError, AttributeError)
+"""What rebuilding a saved object (a parameter or the learner) raises on a bad file; the
+store turns them into :class:`~tdkit.StoreError` naming the field."""
+
+
+@contextmanager
+def _refused(message: str) -> Iterator[None]:
+    """Turn an error of rebuilding from saved values into ``StoreError("<message> (<error>).")``."""
+    try:
+        yield
+    except _REBUILD_ERRORS as exc:
+        raise StoreError(f"{message} ({type(exc).__name__}: {exc}).") from None
 
 
 def _decode_param(name: str, value: Any, arrays: dict[str, np.ndarray]) -> Any:
@@ -228,7 +229,7 @@ def agent_state(agent: Any) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
     return meta, arrays
 
 
-def _check_array_values(name: str, kind: str, array: np.ndarray, bound: int | None) -> None:
+def _require_array_values(name: str, kind: str, array: np.ndarray, bound: int | None) -> None:
     base = _base_kind(kind)
     field = f"state/{name}"
     if base in ("values", "state_values"):
@@ -248,7 +249,7 @@ def _check_array_values(name: str, kind: str, array: np.ndarray, bound: int | No
             )
 
 
-def _check_scalar(name: str, kind: str, value: Any, n_states: int, n_actions: int) -> Any:
+def _require_scalar(name: str, kind: str, value: Any, n_states: int, n_actions: int) -> Any:
     """Return the attribute value for a declared scalar, or raise StoreError."""
     field = f"scalars.{name}"
     if kind == "counter":
@@ -302,7 +303,7 @@ def _check_scalar(name: str, kind: str, value: Any, n_states: int, n_actions: in
     return masks
 
 
-def _check_rng(agent: Any, saved: Any) -> dict[str, Any]:
+def _require_rng(agent: Any, saved: Any) -> dict[str, Any]:
     """Validate a generator state against the structure of ``agent``'s own generator."""
     current = agent.rng.bit_generator.state
 
@@ -346,7 +347,7 @@ def _learner_class(name: str, classes: dict[str, type] | None) -> type:
     return table[name]
 
 
-def _check_sizes(cls: type, meta: dict[str, Any], arrays: dict[str, np.ndarray],
+def _require_sizes(cls: type, meta: dict[str, Any], arrays: dict[str, np.ndarray],
                  max_bytes: int) -> tuple[int, int]:
     """Check declared arrays and the implied table size before the learner is built."""
     params = meta["params"]
@@ -403,18 +404,18 @@ def _validated_state(
         if base in _SCALAR_KINDS:
             require(name in scalars, f"scalars.{name}", "missing; the file is incomplete.")
             width = columns if base == "held_transition" else n_actions
-            values[name] = _check_scalar(name, base, scalars[name], n_states, width)
+            values[name] = _require_scalar(name, base, scalars[name], n_states, width)
     for name, kind in fields.items():
         if _base_kind(kind) in _ARRAY_KINDS:
             bound_name = kind.partition("<=")[2]
             bound = values.get(bound_name) if bound_name else None
-            _check_array_values(name, kind, arrays[f"state/{name}"], bound)
+            _require_array_values(name, kind, arrays[f"state/{name}"], bound)
             values[name] = arrays[f"state/{name}"]
     has_hooks = any(_base_kind(k) == "hooks" for k in fields.values())
     require((meta["extra"] is not None) == has_hooks, "extra",
              f"{type(agent).__name__} keeps no model state, but the file has some."
              if not has_hooks else f"missing: a {type(agent).__name__} keeps model state.")
-    values["rng"] = _check_rng(agent, meta["rng"])
+    values["rng"] = _require_rng(agent, meta["rng"])
     return values
 
 
@@ -426,7 +427,7 @@ def _apply(agent: Any, values: dict[str, Any], extra: Any) -> None:
     if extra is not None:
         try:
             agent._set_extra_state(extra)
-        except _BUILD_ERRORS as exc:
+        except _REBUILD_ERRORS as exc:
             agent.rng.bit_generator.state = old_rng
             raise StoreError(
                 f"extra: the saved {type(agent).__name__} model state is malformed "
@@ -443,7 +444,7 @@ def _apply(agent: Any, values: dict[str, Any], extra: Any) -> None:
 def build(meta: dict[str, Any], arrays: dict[str, np.ndarray],
            classes: dict[str, type] | None, max_bytes: int) -> Any:
     cls = _learner_class(meta["class"], classes)
-    _check_sizes(cls, meta, arrays, max_bytes)
+    _require_sizes(cls, meta, arrays, max_bytes)
     params = {k: _decode_param(k, v, arrays) for k, v in meta["params"].items()}
     with _refused(f"params: a {cls.__name__} cannot be built from the saved parameters"):
         agent = cls(**params)

@@ -26,7 +26,7 @@ import numpy as np
 from ... import _greedy
 from ...envs import _successors
 from ...learners import _targets
-from ._result import BatchResult, split_episodes
+from ._result import BatchResult, batch_result
 from ._setup import LEARNERS, Setup, schedule_values, step_size_kind, uniform_blocks
 
 __all__ = ["run_compiled"]
@@ -267,13 +267,4 @@ def run_compiled(
             ids.append(end_ids[:n_ended].copy())
             returns.append(end_returns[:n_ended].copy())
             lengths.append(end_lengths[:n_ended].copy())
-    return BatchResult(
-        learner=learner,
-        tables=(q[0] + q[1]) / 2.0 if double else q[0],
-        visits=total_visits,
-        episode_returns=split_episodes(ids, returns, K, np.float64),
-        episode_lengths=split_episodes(ids, lengths, K, np.int64),
-        steps=steps,
-        double_tables=q if double else None,
-        backend="compiled",
-    )
+    return batch_result(learner, q, total_visits, (ids, returns, lengths), steps, "compiled")
