@@ -88,7 +88,7 @@ class QLearning(TabularAgent):
                 target = r + self.gamma * max(row)
             else:
                 target = r + self.gamma * row_max(row, self._sets.of(next_mask))
-        return (self._td_step(self._q, self._visits, s, a, target),)
+        return (self._td_main(s, a, target),)  # r, gamma and the row are Python floats
 
     #: Q-learning's update under a name subclasses keep when they override ``_learn``
     #: (the planning learners apply it to real and simulated transitions alike).
