@@ -99,6 +99,9 @@ class Transition(NamedTuple):
     next_mask: np.ndarray | None = None
 
 
+_HIGHEST = sys.float_info.max
+_LOWEST = -_HIGHEST
+
 _VARIADIC = (inspect.Parameter.VAR_POSITIONAL, inspect.Parameter.VAR_KEYWORD)
 _PARAMETERS: dict[type, tuple[inspect.Parameter, ...]] = {}
 
@@ -688,7 +691,7 @@ class TabularAgent:
         table and the counts as they were.
         """
         if values is self._q and visits is self._visits:
-            return self._td_main(s, a, float(target), float(weight))
+            return float(self._td_main(s, a, target, weight))
         alpha = self._count_visit(visits, s, a)
         q = values[s, a]
         delta = target - q
@@ -704,8 +707,9 @@ class TabularAgent:
     def _td_main(self, s: int, a: int, target: float, weight: float = 1.0) -> float:
         """:meth:`_td_step` on ``_q`` and ``_visits``, through their flat views.
 
-        ``target`` and ``weight`` must be Python floats (:meth:`_td_step`
-        converts them); learners whose target is one call this directly. The
+        The error is returned as computed: a Python float when ``target`` and
+        ``weight`` are (:meth:`_td_step` converts them), so learners whose
+        target is a Python float call this directly. The
         table and the count are written only after the new value is known to
         be finite.
         """
@@ -720,7 +724,7 @@ class TabularAgent:
         if weight != 1.0:
             delta = weight * delta
         new = old + alpha * delta
-        if new - new != 0.0:  # inf or NaN (Python floats: no warning)
+        if not _LOWEST <= new <= _HIGHEST:  # inf or NaN (no numpy warning for numpy floats)
             self._refuse_overflow(s, a, target, new)
         qv[k] = new
         self._vv[k] = n

@@ -144,7 +144,7 @@ class Sarsa(CommitsNextAction, TabularAgent):
         else:
             a2 = self._next_action(s2, next_mask, truncated)
             target = r + self.gamma * self._qv[s2 * self._width + a2]
-        return (self._td_step(self._q, self._visits, s, a, target),)
+        return (self._td_main(s, a, target),)  # r, gamma and the entry are Python floats
 
 
 class ExpectedSarsa(TabularAgent):
