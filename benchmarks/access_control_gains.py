@@ -3,7 +3,7 @@
 Sutton & Barto (2018), Example 10.2 (parameters recalled from memory). Prints
 the exact optimal gain (relative value iteration), the gain of accepting
 everyone, and over many seeds the learned average reward and the exact gain of
-the learned greedy policy, with the setting tests/test_access_control.py uses.
+the learned greedy policy, with the setting tests/reference/test_access_control.py uses.
 The spread printed here is what the test's margins are derived from.
 
     python benchmarks/access_control_gains.py               # 100 seeds

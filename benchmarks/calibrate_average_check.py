@@ -2,7 +2,7 @@
 
 Runs ``tdkit.verify._average_checks.check_average_reward`` for tdkit's three
 average-reward learners (with the factories a team would use, as in
-tests/test_differential.py) over many seeds and counts failures, which are
+tests/unit/learners/test_differential.py) over many seeds and counts failures, which are
 false alarms: the check's margin is derived for a rate of 1/1000. With zero
 failures in n seeds the one-sided 95% upper bound on the rate is
 1 - 0.05**(1/n) (about 3/n). It then runs three deliberately broken learners

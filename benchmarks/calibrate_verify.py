@@ -2,7 +2,7 @@
 
 Runs ``tdkit.verify.verify_agent`` on every tdkit learner (with its defaults
 and with the settings docs/verify.md recommends) and on the deliberately
-broken agents of tests/test_verify_mutants.py, over many seeds, and prints
+broken agents of tests/reference/test_verify_mutants.py, over many seeds, and prints
 one table: for each learner and check, how often a correct agent failed it
 (with the 95% upper confidence bound of the false-alarm rate,
 Clopper-Pearson; 3/N for 0 of N), and for each mutant how often the check
@@ -48,7 +48,7 @@ VARIANTS = ("defaults", "recommended")
 
 def _mutants_module():
     spec = importlib.util.spec_from_file_location(
-        "_verify_mutants", ROOT / "tests" / "test_verify_mutants.py"
+        "_verify_mutants", ROOT / "tests" / "reference" / "test_verify_mutants.py"
     )
     module = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(module)

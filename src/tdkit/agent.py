@@ -55,7 +55,7 @@ from .exploration import EpsilonGreedy, Exploration, as_exploration
 from .schedules import Constant, Schedule, as_schedule
 from .tables import ActionValueTable, InitialValue, read_only
 
-__all__ = ["Agent", "TabularAgent", "Transition"]
+__all__ = ["Agent", "TabularAgent", "Transition", "constructor_parameters"]
 
 
 def _real_reward(agent: Any, reward: Any) -> float:

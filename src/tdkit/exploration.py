@@ -33,7 +33,10 @@ from ._greedy import greedy_action, masked_max, masked_mean, uniform_action
 from ._validation import require_real
 from .schedules import Constant, Schedule, as_schedule, schedule_from_description
 
-__all__ = ["UCB", "EpsilonGreedy", "Exploration", "Softmax", "as_exploration"]
+__all__ = [
+    "UCB", "EpsilonGreedy", "Exploration", "Softmax", "as_exploration",
+    "exploration_from_description",
+]
 
 
 class Exploration(ABC):

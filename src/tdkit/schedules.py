@@ -28,6 +28,7 @@ __all__ = [
     "Schedule",
     "VisitCount",
     "as_schedule",
+    "schedule_from_description",
 ]
 
 

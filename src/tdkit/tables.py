@@ -17,7 +17,7 @@ from ._errors import CapacityError, InvalidParameterError
 from ._validation import require_positive_int
 
 __all__ = ["ActionValueTable", "InitialValue", "available_memory", "initial_values",
-           "require_capacity"]
+           "read_only", "require_capacity"]
 
 #: A constant (optimistic if large), or ``(low, high)`` for seeded uniform noise.
 InitialValue = float | tuple[float, float]

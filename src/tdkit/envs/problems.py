@@ -9,7 +9,7 @@ gymnasium's CliffWalking). A move off the grid leaves the agent in place.
 Unless stated otherwise, numbers (layouts, rewards, discounts) follow
 Sutton, R. S. & Barto, A. G. (2018). Reinforcement Learning: An
 Introduction, 2nd ed., MIT Press; they were recalled from memory of the book
-and the tests in ``tests/test_problems.py`` check the published values that
+and the tests in ``tests/reference/test_problems.py`` check the published values that
 follow from them.
 """
 
@@ -30,6 +30,7 @@ from .finite import FiniteMDP
 __all__ = [
     "GRID_ACTIONS",
     "KING_ACTIONS",
+    "Successor",
     "ChangingMaze",
     "access_control",
     "blocking_maze",

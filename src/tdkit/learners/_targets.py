@@ -33,7 +33,7 @@ Three callers share these functions:
   same quantities for a ``(K, A)`` array of rows with an optional ``(K, A)``
   boolean mask, in the same order of floating-point operations, so they agree
   with the row versions bit for bit (checked by hypothesis in
-  ``tests/test_targets.py``).
+  ``tests/unit/learners/test_targets.py``).
 
 Random choices take their uniform numbers ``u`` in [0, 1) from the caller
 (drawn from the caller's own ``numpy.random.Generator``), so two paths given

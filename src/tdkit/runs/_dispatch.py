@@ -251,12 +251,13 @@ def _width(executor: Executor, workers: int) -> int | None:
 
 
 def _chunk_size(executor: Executor, workers: int, n: int) -> int:
-    """Calls per task: 1 for process pools; for executors with a per-task cost of their own
-    (a Dask scheduler) about 4 tasks per worker, so that cost is paid 4 times per worker."""
-    if getattr(executor, "_max_workers", None) is not None or workers != 0:
+    """Calls per task: 1, except on a Dask client, which pays a scheduler cost per task and
+    gets about 4 tasks per worker. Executors whose width is unknown get 1 (a wide pool of
+    unknown size must not be left with a few large tasks)."""
+    if workers != 0 or getattr(executor, "_client", None) is None:
         return 1
-    width = _width(executor, workers) or 1
-    return max(1, n // (4 * width))
+    width = _width(executor, workers)
+    return 1 if width is None else max(1, n // (4 * width))
 
 
 def _guarded_chunk(fn: Callable[..., Any], calls: Sequence[tuple[Any, ...]],

@@ -33,7 +33,10 @@ import numpy as np
 from .._errors import EnvironmentProtocolError
 from .faults import AgentFault, checked_calls
 
-__all__ = ["EndlessEpisodeWarning", "EpisodeHooks", "EpisodeResult", "info_mask", "run_episode"]
+__all__ = [
+    "EndlessEpisodeWarning", "EpisodeHooks", "EpisodeResult", "bad_reward", "info_mask",
+    "run_episode",
+]
 
 _INF = math.inf
 

@@ -304,7 +304,7 @@ def _judge(agent: Any, probe: Probe, kind: AgentKind, here: str) -> str | None:
     return None
 
 
-def rebuild_code(env_code: str, seed: int, episodes: int, max_episode_steps: int | None) -> str:
+def _rebuild_code(env_code: str, seed: int, episodes: int, max_episode_steps: int | None) -> str:
     """Code that rebuilds a verifier run through ``tdkit.train`` (see CheckResult.rebuild)."""
     limit = "" if max_episode_steps is None else f", max_episode_steps={max_episode_steps}"
     return (
@@ -313,7 +313,7 @@ def rebuild_code(env_code: str, seed: int, episodes: int, max_episode_steps: int
     )
 
 
-def probe_code(probe: Probe, prediction: bool) -> str:
+def _probe_code(probe: Probe, prediction: bool) -> str:
     """The expression that builds ``probe``'s environment."""
     flag = ", prediction=True" if prediction else ""
     return f'tdkit.verify.probes.get("{probe.name}"{flag}).make_env()'
@@ -325,7 +325,7 @@ def _probe_check(
     """Train on ``probe`` for each seed of the level and judge the result."""
     for seed in ctx.seeds:
         env = probe.make_env()
-        code = rebuild_code(probe_code(probe, ctx.prediction), seed, episodes, probe.max_steps)
+        code = _rebuild_code(_probe_code(probe, ctx.prediction), seed, episodes, probe.max_steps)
         try:
             agent = build_agent(ctx.make_agent, env, seed)
             run_episodes(agent, env, episodes=episodes, seed=seed,
@@ -790,7 +790,7 @@ def check_episode_boundaries(ctx: Context) -> CheckResult:
     for seed in ctx.seeds:
         env = probe.make_env()
         code = (
-            f"env = {probe_code(probe, ctx.prediction)}; agent = make_agent(env, {seed}); "
+            f"env = {_probe_code(probe, ctx.prediction)}; agent = make_agent(env, {seed}); "
             f"[tdkit.train(agent, env, episodes=1, steps={CUT_AFTER} if k % 2 == 0 else None, "
             f"seed=np.random.SeedSequence({seed}, spawn_key=(k,))) for k in range({episodes})]"
         )
@@ -893,7 +893,7 @@ def check_step_size(ctx: Context) -> CheckResult:
     episodes = 100
     seed = ctx.seed
     env = probe.make_env()
-    code = rebuild_code(probe_code(probe, ctx.prediction), seed, episodes, probe.max_steps)
+    code = _rebuild_code(_probe_code(probe, ctx.prediction), seed, episodes, probe.max_steps)
     try:
         agent = build_agent(ctx.make_agent, env, seed)
         watcher = _StepSizeWatcher(agent, ctx.kind, [0, 1, 2])
@@ -1305,7 +1305,7 @@ def check_convergence(ctx: Context) -> CheckResult:
     for problem in problems_:
         for seed in ctx.seeds:
             env = problem.mdp.to_env()
-            code = rebuild_code(problem.code, seed, problem.episodes, problem.max_steps)
+            code = _rebuild_code(problem.code, seed, problem.episodes, problem.max_steps)
             try:
                 agent = build_agent(ctx.make_agent, env, seed)
                 live = [int(s) for s in np.flatnonzero(~problem.mdp.terminal)]

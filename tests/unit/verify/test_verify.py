@@ -37,7 +37,7 @@ from tdkit.verify import (
 )
 from tdkit.verify._probes import masks_probe
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = next(p for p in Path(__file__).resolve().parents if (p / "pyproject.toml").exists())
 
 # Factories of tdkit learners used as known-good agents in this file (every learner,
 # at both levels, is verified in test_verify_learners.py).

@@ -13,7 +13,7 @@ import pytest
 from tdkit.__main__ import main
 from tdkit.verify import CHECK_NAMES
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = next(p for p in Path(__file__).resolve().parents if (p / "pyproject.toml").exists())
 
 FACTORIES = textwrap.dedent(
     """

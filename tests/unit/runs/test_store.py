@@ -184,7 +184,7 @@ def _every_learner():
     }
     return [
         pytest.param(name, special.get(name, {}), id=name) for name in tdkit.learners.__all__
-        if not name.startswith("Differential")  # no gamma: tests/test_differential.py
+        if not name.startswith("Differential")  # no gamma: tests/unit/learners/test_differential.py
     ]
 
 

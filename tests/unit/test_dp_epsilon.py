@@ -8,7 +8,7 @@ Section 5.4: the fixed point of ε-soft policy improvement satisfies exactly
 the ε-greedy Bellman equation). Bounds: ``value_iteration`` states
 ``||v - v_fixed|| < tol / 2`` (Puterman 1994, Theorem 6.3.1 applied to the
 ε-greedy operator, a gamma-contraction); rounding slack ``_ROUND`` as derived
-in ``tests/test_dp.py`` (models here have the same sizes, rewards and gamma).
+in ``tests/unit/test_dp.py`` (models here have the same sizes, rewards and gamma).
 """
 
 from __future__ import annotations

@@ -17,7 +17,7 @@ from tdkit.__main__ import _prog, main
 from tdkit.demo import DEMO_LEARNERS, run_demo
 from tdkit.envs.inventory import InventoryEnv
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = next(p for p in Path(__file__).resolve().parents if (p / "pyproject.toml").exists())
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
 
 

@@ -18,7 +18,8 @@ from tdkit import learners
 
 PREDICTION = {"TD0", "TDLambda", "DifferentialTD"}
 CONTROL = [getattr(learners, name) for name in learners.__all__ if name not in PREDICTION]
-# Average-reward learners take no gamma; their own contract is in tests/test_differential.py.
+# Average-reward learners take no gamma; their own contract is in
+# tests/unit/learners/test_differential.py.
 DISCOUNTED = [cls for cls in CONTROL if not cls.__name__.startswith("Differential")]
 
 

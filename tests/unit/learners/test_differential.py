@@ -4,7 +4,7 @@ Sources: the update equations of Wan, Y., Naik, A. & Sutton, R. S. (2021),
 "Learning and planning in average-reward Markov decision processes", ICML
 (Differential Q-learning and Differential TD-learning), re-implemented here
 independently of tdkit; exact gains from tdkit.relative_value_iteration, which
-tests/test_average_dp.py checks against scipy's linear programming.
+tests/unit/test_average_dp.py checks against scipy's linear programming.
 """
 
 from __future__ import annotations

@@ -55,3 +55,48 @@ def test_every_learner_has_the_shared_constructor_and_for_env():
         assert "seed" in params or "kwargs" in params, name
         assert callable(cls.for_env), name
         assert isinstance(cls.__doc__, str) and "References" in cls.__doc__, name
+
+
+def _public_modules() -> list[types.ModuleType]:
+    """tdkit and every module below it whose dotted path has no private (``_``) part."""
+    import importlib
+    import pkgutil
+
+    names = ["tdkit"] + [
+        info.name for info in pkgutil.walk_packages(tdkit.__path__, "tdkit.")
+        if not any(part.startswith("_") for part in info.name.split("."))
+    ]
+    return [importlib.import_module(name) for name in names]
+
+
+PUBLIC_MODULES = _public_modules()
+
+
+def test_every_public_module_declares_its_surface_in_all():
+    # Each public module and subpackage says what it offers: __all__ exists, has no
+    # duplicates, names only things that exist, and holds every public class or
+    # function the module defines itself (anything else would be public by accident).
+    assert len(PUBLIC_MODULES) > 20  # the walk found the subpackages, not just tdkit
+    for module in PUBLIC_MODULES:
+        name = module.__name__
+        assert isinstance(getattr(module, "__all__", None), list | tuple), name
+        exported = list(module.__all__)
+        assert len(exported) == len(set(exported)), name
+        missing = [n for n in exported if not hasattr(module, n)]
+        assert not missing, f"{name}.__all__ names what does not exist: {missing}"
+        defined_here = {
+            n for n, value in vars(module).items()
+            if not n.startswith("_")
+            and (inspect.isclass(value) or inspect.isfunction(value))
+            and getattr(value, "__module__", None) == name
+        }
+        unlisted = sorted(defined_here - set(exported))
+        assert not unlisted, f"{name} defines public {unlisted} but leaves them out of __all__"
+
+
+def test_every_exported_class_and_function_has_a_docstring():
+    for module in PUBLIC_MODULES:
+        for n in module.__all__:
+            value = getattr(module, n)
+            if inspect.isclass(value) or inspect.isfunction(value):
+                assert inspect.getdoc(value), f"{module.__name__}.{n} has no docstring"

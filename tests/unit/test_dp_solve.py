@@ -1,7 +1,7 @@
 """``tdkit.solve``: every method gives the exact answer within its stated bound.
 
 The reference is policy iteration (exact up to rounding: dense solves; the
-rounding slack ``_ROUND`` is derived in ``tests/test_dp.py`` for these sizes,
+rounding slack ``_ROUND`` is derived in ``tests/unit/test_dp.py`` for these sizes,
 rewards in [-1, 1] and gamma <= 0.95). The bound under test is the one each
 method states: ``||v - v_fixed|| <= error_bound < tol / 2`` (Puterman 1994,
 Markov Decision Processes, Theorem 6.3.1 for value iteration; Section 6.6.3,

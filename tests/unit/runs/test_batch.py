@@ -398,7 +398,7 @@ def test_cliff_walking_sarsa_earns_more_online_and_q_learning_learns_the_edge():
     # undiscounted. Q-learning's greedy path is the 13-step edge (return -13);
     # SARSA's online returns (about -25 in the figure) beat Q-learning's (about
     # -50; both read off the figure, recalled from memory). Margins as in
-    # tests/test_cliff_walking.py: a Q-learning episode falls with probability
+    # tests/reference/test_cliff_walking.py: a Q-learning episode falls with probability
     # about 0.27 (sd of a return about 52); the mean over 16 learners x >= 500
     # episodes has sd below 52 / sqrt(8000) < 0.6, so a gap of 10 is > 15 sd
     # below the expected 25.
@@ -461,7 +461,7 @@ def test_q_learning_batch_reaches_q_star_on_garnet(seed):
     past errors; if errors decay like c / sqrt(t) the past average is about twice
     the current error, so error <= eps + 2 gamma error, i.e. error <= eps / (1 - 2
     gamma) (heuristic reading of Szepesvari 1997, "The asymptotic convergence-rate
-    of Q-learning", NIPS 10; the same bound as tests/test_qlearning_exact.py).
+    of Q-learning", NIPS 10; the same bound as tests/reference/test_qlearning_exact.py).
     n is each learner's smallest visit count.
     """
     gamma = 0.25

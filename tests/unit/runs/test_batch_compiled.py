@@ -40,7 +40,7 @@ from tdkit.schedules import Linear, Schedule, VisitCount
 
 pytest.importorskip("numba")
 
-SRC = Path(__file__).resolve().parents[1] / "src"
+SRC = next(p for p in Path(__file__).resolve().parents if (p / "pyproject.toml").exists()) / "src"
 
 
 def stochastic_model() -> FiniteMDP:

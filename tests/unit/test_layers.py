@@ -97,7 +97,7 @@ def test_the_named_never_edges(module):
     if head.startswith("dp"):
         assert not {m for m in inner if m.split(".")[0] == "learners"}
     # The compiled kernels import numba at their top, and are themselves imported
-    # only when the compiled path is asked for (tests/test_batch_compiled.py checks
+    # only when the compiled path is asked for (tests/unit/runs/test_batch_compiled.py checks
     # that import tdkit does not import numba).
     if _layer(module) <= 3 and not module.endswith("._kernels"):
         heavy = sorted(top_level & set(OPTIONAL))
