@@ -184,7 +184,10 @@ class TabularAgent:
     Subclasses implement :meth:`_learn`, which applies the update for one
     encoded transition and returns the TD errors as a tuple. The shared TD
     step :math:`Q(s,a) \leftarrow Q(s,a) + \alpha\,[G - Q(s,a)]` lives in
-    :meth:`_td_step` and is written nowhere else.
+    :meth:`_td_step` (any table pair) and its form for the learner's own
+    tables, :meth:`_td_main`, which learners with a Python-float target call
+    directly; it is written nowhere else. ``_learn`` receives a plain tuple in
+    :class:`Transition` field order and unpacks it by position.
 
     Parameters
     ----------
