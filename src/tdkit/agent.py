@@ -238,6 +238,7 @@ class TabularAgent:
         "_draw",
         "_eps_rule",
         "_own_choose",
+        "_own_td_step",
         "_qbytes",
         "_qv",
         "_row_bytes",
@@ -314,6 +315,8 @@ class TabularAgent:
         self._eps_rule = explore if type(explore) is EpsilonGreedy else None
         # act goes straight to _pick unless a subclass overrides _choose.
         self._own_choose = type(self)._choose is TabularAgent._choose
+        # Learners call _td_main directly only when no subclass overrides _td_step.
+        self._own_td_step = type(self)._td_step is TabularAgent._td_step
         # Without encoders, a Python int in range is its own index: the per-step
         # methods test ``type(x) is int and 0 <= x < _states_plain`` before calling
         # the encoder (-1 when there is an encoder, so the test always fails).
@@ -712,7 +715,8 @@ class TabularAgent:
 
         The error is returned as computed: a Python float when ``target`` and
         ``weight`` are (:meth:`_td_step` converts them), so learners whose
-        target is a Python float call this directly. The
+        target is a Python float call this directly when ``_own_td_step`` (no
+        subclass overrides :meth:`_td_step`). The
         table and the count are written only after the new value is known to
         be finite.
         """

@@ -98,3 +98,18 @@ def test_td_errors_and_table_entries_stay_python_floats(cls):
     (error,) = agent.update()
     assert type(error) is float and type(agent._qv[0]) is float
     assert agent.visits[0, 0] == 1
+
+
+@pytest.mark.parametrize("cls", [tdkit.QLearning, tdkit.Sarsa])
+def test_an_overridden_td_step_is_what_learn_calls(cls):
+    calls = []
+
+    class Recording(cls):
+        def _td_step(self, values, visits, s, a, target, weight=1.0):
+            calls.append((s, a, target))
+            return super()._td_step(values, visits, s, a, target, weight)
+
+    agent = Recording(2, 1, gamma=0.5, step_size=1.0, seed=0)
+    agent.observe(0, 0, 1.0, 1, False, False)
+    assert agent.update() == (1.0,) and calls == [(0, 0, 1.0)]
+    assert not agent._own_td_step and cls(2, 1)._own_td_step
