@@ -1,20 +1,31 @@
 """Greedy choice with uniform random tie-breaking, masked maxima, and action sets.
 
 These few functions are the single place where "greedy" is defined; every
-learner, exploration rule and verifier goes through them.
+learner, exploration rule, verifier and the batch kernels go through them.
 
-Tie-breaking draws one uniform number ``u`` in [0, 1) and picks tie
-``floor(u * k)`` among the ``k`` tied actions, so each tied action has
-probability 1/k (to within 2**-53).
+Tie-breaking takes one uniform number ``u`` in [0, 1) and picks tie
+``floor(u * k)`` (in index order) among the ``k`` tied actions, so each tied
+action has probability 1/k (to within 2**-53). A single maximum takes no
+number.
 
-Two forms of each rule exist: the numpy form (``greedy_action``,
-``masked_max``, ...) for array rows, and the pure-Python form
-(``greedy_index``, ``row_max``) for a row read as a tuple of floats, which is
-what the learners' per-step path uses (a numpy scalar costs several times a
-Python float). Both forms draw the same random numbers in the same order and
-pick the same action. A mask enters the pure-Python form as an
-:class:`ActionSet`, built once per distinct mask by :func:`action_set` and
-then reused, so masks cost no array work per step.
+The rule is written once per representation of the values:
+
+* :func:`greedy_pick`, the definition, on one row (a tuple, list or 1-D array)
+  and a sequence of allowed indices, with ``u`` given; plain Python loops, so
+  numba compiles it unchanged for :mod:`tdkit.batch` (it is
+  :func:`tdkit.learners._targets.greedy_index`); a NaN gives -1;
+* :func:`greedy_pick_rows`, the same for a ``(K, A)`` array of rows, bit for
+  bit (it is :func:`tdkit.learners._targets.greedy_index_rows`);
+* :func:`greedy_action`, the numpy form for one array row, drawing ``u`` from
+  a generator (the exploration rules).
+
+:func:`greedy_index` (the learners' per-step path: a row read as a tuple of
+floats, a mask as an :class:`ActionSet`, ``u`` from a ``draw`` callable) and
+:func:`greedy_rows` are thin adapters over the first two that raise on NaN.
+All forms pick the same action from the same numbers, and draw a number only
+when there is a tie. A mask enters the per-step form as an :class:`ActionSet`,
+built once per distinct mask by :class:`ActionSets` and then reused, so masks
+cost no array work per step.
 """
 
 from __future__ import annotations
@@ -33,6 +44,8 @@ __all__ = [
     "check_mask",
     "greedy_action",
     "greedy_index",
+    "greedy_pick",
+    "greedy_pick_rows",
     "greedy_rows",
     "masked_max",
     "masked_mean",
@@ -124,26 +137,88 @@ def masked_mean(values: np.ndarray, mask: np.ndarray | None) -> float:
 def greedy_rows(rows: np.ndarray, u: np.ndarray) -> np.ndarray:
     """Greedy action of each row of ``rows`` (shape (K, A)), ties broken uniformly.
 
-    Row ``i`` picks tie ``floor(u[i] * k_i)`` (in index order) of its ``k_i``
-    maximal entries, the rule of :func:`greedy_action` applied
-    to every row at once, so each tied action has probability ``1 / k_i``.
+    :func:`greedy_pick_rows` without a mask, refusing NaN: row ``i`` picks tie
+    ``floor(u[i] * k_i)`` (in index order) of its ``k_i`` maximal entries.
 
     Raises
     ------
     FloatingPointError
         If a row contains NaN (greedy is then undefined).
     """
-    ties = rows == rows.max(axis=1, keepdims=True)
-    rank = ties.cumsum(axis=1)  # rank[i, j]: maximal entries among rows[i, :j + 1]
-    counts = rank[:, -1]
-    if not counts.all():
-        bad = int(np.argmin(counts))
+    best = greedy_pick_rows(rows, None, u)
+    undefined = best < 0
+    if undefined.any():
+        bad = int(np.argmax(undefined))
         raise FloatingPointError(
             f"greedy choice is undefined for learner {bad}: its action values "
             f"contain NaN ({rows[bad]!r}). Check rewards and step sizes for overflow."
         )
-    pick = (u * counts).astype(np.intp)
-    return (rank > pick[:, None]).argmax(axis=1)
+    return best
+
+
+# The two definitions of the tie rule below must stay numba-compilable (tdkit.batch's
+# kernel module applies numba.njit to greedy_pick): no keyword-only arguments, no None
+# inside the loops, no Python objects, only loops, arithmetic and indexing.
+def greedy_pick(values: Sequence[float], allowed: Sequence[int], u: float) -> int:
+    r"""An allowed action of maximal value: tie :math:`\lfloor u k \rfloor` of the :math:`k` ties.
+
+    ``allowed`` lists the allowed actions in increasing order (``range(A)``
+    without a mask). Returns -1 when an allowed value is NaN (greedy is then
+    undefined; the caller raises). One pass finds the maximum, its first
+    action and the number of ties; a second pass runs only when there is a
+    tie. ``u`` is read only when there is a tie.
+
+    Examples
+    --------
+    >>> greedy_pick([1.0, 3.0, 3.0, 0.0], range(4), 0.49), greedy_pick([1.0, 3.0, 3.0], (0, 2), 0.0)
+    (1, 2)
+    """
+    best = allowed[0]
+    top = values[best]
+    k = 1
+    for j in range(1, len(allowed)):
+        a = allowed[j]
+        v = values[a]
+        if v > top:
+            top = v
+            best = a
+            k = 1
+        elif v == top:
+            k += 1
+        elif v != v:
+            return -1
+    if top != top:
+        return -1
+    if k == 1:
+        return best
+    pick = int(u * k)
+    if pick >= k:  # a rescaled u may round up to 1
+        pick = k - 1
+    for a in allowed:
+        if values[a] == top:
+            if pick == 0:
+                return a
+            pick -= 1
+    return -1  # pragma: no cover - only if u >= 1
+
+
+def greedy_pick_rows(rows: np.ndarray, mask: np.ndarray | None, u: np.ndarray) -> np.ndarray:
+    """:func:`greedy_pick` of every row of ``rows`` (K, A); ``mask`` (K, A) bool or None.
+
+    ``u`` has shape (K,); rows with NaN give -1. Same choices as the row form,
+    bit for bit.
+    """
+    candidates = rows if mask is None else np.where(mask, rows, _NEG_INF)
+    ties = candidates == candidates.max(axis=1, keepdims=True)  # a NaN max: no ties
+    if mask is not None:
+        ties &= mask  # an all -inf row: only allowed actions tie
+    rank = ties.cumsum(axis=1)  # rank[i, j]: ties among rows[i, :j + 1]
+    counts = rank[:, -1]
+    pick = np.minimum((u * counts).astype(np.intp), counts - 1)
+    best = (rank > pick[:, None]).argmax(axis=1)
+    if not counts.all():
+        best[counts == 0] = -1
+    return best
 
 
 class ActionSet(NamedTuple):
@@ -249,17 +324,19 @@ def _nan_error(row: Sequence[float]) -> FloatingPointError:
 def greedy_index(
     row: Sequence[float], allowed: ActionSet | None, draw: Callable[[], float]
 ) -> int:
-    """:func:`greedy_action` for a row of Python floats: same choice, same draws.
+    """:func:`greedy_pick` for the per-step path: a row of Python floats, a mask as an ActionSet.
 
     ``draw`` returns a uniform number in [0, 1) (a generator's bound
-    ``random``); it is called only when there are ties.
+    ``random``); it is called only when there are ties, so the choice and
+    the numbers drawn are those of :func:`greedy_action`.
 
     Raises
     ------
     FloatingPointError
-        If the maximum is NaN. (A NaN that is not the maximum of a tuple
-        cannot be seen by ``max``; the learners' TD step never writes a
-        non-finite value, so their tables hold none.)
+        If the maximum is NaN, or there are ties and an allowed value is NaN.
+        (A NaN beside a single maximum cannot be seen by ``max``; the
+        learners' TD step never writes a non-finite value, so their tables
+        hold none.)
 
     Examples
     --------
@@ -269,22 +346,20 @@ def greedy_index(
     2
     """
     if allowed is None:
-        top = max(row)
-        if top != top:
-            raise _nan_error(row)
-        if row.count(top) == 1:
-            return row.index(top)
-        ties = [a for a, v in enumerate(row) if v == top]
-        return ties[int(draw() * len(ties))]
-    values = allowed.take(row)
+        values = row
+        indices: Sequence[int] = range(len(row))
+    else:
+        values = allowed.take(row)
+        indices = allowed.indices
     top = max(values)
     if top != top:
         raise _nan_error(values)
-    indices = allowed.indices
-    if values.count(top) == 1:
+    if values.count(top) == 1:  # no tie, no draw
         return indices[values.index(top)]
-    ties = [a for a, v in zip(indices, values, strict=True) if v == top]
-    return ties[int(draw() * len(ties))]
+    best = greedy_pick(row, indices, draw())
+    if best < 0:
+        raise _nan_error(values)
+    return best
 
 
 def row_max(row: Sequence[float], allowed: ActionSet | None) -> float:

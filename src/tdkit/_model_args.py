@@ -13,12 +13,13 @@ from typing import Any
 import numpy as np
 
 from ._errors import InvalidParameterError
+from ._validation import require_float_array, require_probability_rows
 from .envs.finite import FiniteMDP
 
-__all__ = ["_check_allowed", "_check_mdp", "_check_values", "_policy_probabilities"]
+__all__ = ["_require_allowed", "_require_mdp", "_require_values", "_policy_probabilities"]
 
 
-def _check_mdp(owner: str, mdp: Any) -> FiniteMDP:
+def _require_mdp(owner: str, mdp: Any) -> FiniteMDP:
     if not isinstance(mdp, FiniteMDP):
         raise InvalidParameterError(
             f"{owner}: mdp must be a tdkit.FiniteMDP; got {type(mdp).__name__}. "
@@ -27,8 +28,8 @@ def _check_mdp(owner: str, mdp: Any) -> FiniteMDP:
     return mdp
 
 
-def _check_values(owner: str, name: str, values: Any, shape: tuple[int, ...]) -> np.ndarray:
-    array = np.asarray(values, dtype=np.float64)
+def _require_values(owner: str, name: str, values: Any, shape: tuple[int, ...]) -> np.ndarray:
+    array = require_float_array(owner, name, values)
     if array.shape != shape:
         raise InvalidParameterError(
             f"{owner}: {name} must have shape {shape}; got shape {array.shape}."
@@ -58,31 +59,17 @@ def _policy_probabilities(owner: str, mdp: FiniteMDP, policy: Any) -> np.ndarray
             )
         probs = np.zeros((n, m))
         probs[np.arange(n), array] = 1.0
-        return _check_allowed(owner, mdp, probs)
+        return _require_allowed(owner, mdp, probs)
     if array.shape == (n, m):
-        probs = _check_values(owner, "policy", array, (n, m))
-        if (probs < 0).any():
-            s, a = (int(i) for i in np.argwhere(probs < 0)[0])
-            raise InvalidParameterError(
-                f"{owner}: policy[{s}, {a}] = {float(probs[s, a])!r} is negative; action "
-                "probabilities must be >= 0."
-            )
-        sums = probs.sum(axis=1)
-        off = np.abs(sums - 1.0) > 1e-8
-        if off.any():
-            s = int(np.argmax(off))
-            raise InvalidParameterError(
-                f"{owner}: policy[{s}, :] sums to {float(sums[s])!r}; action probabilities of "
-                "each state must sum to 1."
-            )
-        return _check_allowed(owner, mdp, probs / sums[:, None])
+        probs = _require_values(owner, "policy", array, (n, m))
+        return _require_allowed(owner, mdp, require_probability_rows(owner, "policy", probs))
     raise InvalidParameterError(
         f"{owner}: policy must have shape (S,) = ({n},) (action indices) or (S, A) = "
         f"({n}, {m}) (probabilities); got shape {array.shape}."
     )
 
 
-def _check_allowed(owner: str, mdp: FiniteMDP, probs: np.ndarray) -> np.ndarray:
+def _require_allowed(owner: str, mdp: FiniteMDP, probs: np.ndarray) -> np.ndarray:
     """Refuse a policy that gives a masked action positive probability."""
     masks = mdp.masks
     if masks is not None:

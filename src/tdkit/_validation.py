@@ -9,12 +9,16 @@ import difflib
 import math
 import numbers
 
+import numpy as np
+
 from ._errors import InvalidParameterError
 
 __all__ = [
     "KEYWORD_ALIASES",
     "UnknownKeywordError",
+    "require_float_array",
     "require_in_range",
+    "require_probability_rows",
     "require_known_keywords",
     "require_positive_int",
     "require_real",
@@ -67,6 +71,109 @@ def require_positive_int(owner: str, name: str, value: object, *, minimum: int =
             f"{owner}: {name} must be an integer >= {minimum}; got {value!r}."
         )
     return int(value)
+
+
+def require_float_array(
+    owner: str,
+    name: str,
+    value: object,
+    *,
+    what: str = "an array of real numbers",
+    ndim: int | None = None,
+    copy: bool = False,
+) -> np.ndarray:
+    """Return ``value`` as a float64 array (a fresh copy with ``copy=True``), else raise.
+
+    Raises naming ``owner.name`` when numpy cannot read ``value`` as floats,
+    or when ``ndim`` is given and the array has another number of
+    dimensions; the message has the shape "owner: name must be <what>; got
+    <value>." Shapes and finiteness are the caller's to check.
+
+    Examples
+    --------
+    >>> require_float_array("plot", "values", [[1, 2]], ndim=2)
+    array([[1., 2.]])
+    >>> try:  # doctest: +NORMALIZE_WHITESPACE
+    ...     require_float_array("stats", "scores", ["a"])
+    ... except ValueError as exc:
+    ...     print(exc)
+    stats: scores must be an array of real numbers; got ['a'] (could not convert string to
+    float: 'a').
+    """
+    try:
+        array = np.array(value, dtype=np.float64) if copy else np.asarray(value, dtype=np.float64)
+    except (TypeError, ValueError) as exc:
+        raise InvalidParameterError(
+            f"{owner}: {name} must be {what}; got {value!r:.80} ({exc})."
+        ) from None
+    if ndim is not None and array.ndim != ndim:
+        raise InvalidParameterError(f"{owner}: {name} must be {what}; got {value!r:.80}.")
+    return array
+
+
+PROBABILITY_TOLERANCE = 1e-8
+"""Allowed deviation of a probability row's sum from 1 (such rows are renormalised)."""
+
+
+def require_probability_rows(
+    owner: str,
+    name: str,
+    probs: np.ndarray,
+    *,
+    skip: np.ndarray | None = None,
+    axes: tuple[str, ...] = (),
+) -> np.ndarray:
+    """Return the float array ``probs`` with its rows (last axis) renormalised, else raise.
+
+    Every entry must be >= 0 and every row must sum to 1 within
+    :data:`PROBABILITY_TOLERANCE`. ``skip`` (bool, along the first axis)
+    marks rows that are neither checked nor changed (terminal states).
+    ``axes`` names the axes in messages, e.g. ``("state", "action", "next
+    state")``; the message names the first offending entry or row.
+
+    Examples
+    --------
+    >>> require_probability_rows("solver", "policy", np.array([[0.5, 0.5 + 1e-9]]))
+    array([[0.5, 0.5]])
+    >>> try:  # doctest: +NORMALIZE_WHITESPACE
+    ...     require_probability_rows("solver", "policy", np.array([[0.25, 0.75], [2.0, 2.0]]))
+    ... except ValueError as exc:
+    ...     print(exc)
+    solver: policy[1, :] sums to 4.0; every row must sum to 1 (tolerance 1e-08). Normalise it,
+    e.g. policy = policy / policy.sum(axis=-1, keepdims=True).
+    """
+    index = _first_true(probs < 0, skip)
+    if index is not None:
+        raise InvalidParameterError(
+            f"{owner}: {name}{list(index)} = {float(probs[index])!r} is negative"
+            f"{_named_index(axes, index)}; probabilities must be >= 0."
+        )
+    sums = probs.sum(axis=-1)
+    row = _first_true(np.abs(sums - 1.0) > PROBABILITY_TOLERANCE, skip)
+    if row is not None:
+        raise InvalidParameterError(
+            f"{owner}: {name}[{', '.join(map(str, row))}, :]{_named_index(axes, row)} sums to "
+            f"{float(sums[row])!r}; every row must sum to 1 (tolerance "
+            f"{PROBABILITY_TOLERANCE:g}). Normalise it, e.g. {name} = {name} / "
+            f"{name}.sum(axis=-1, keepdims=True)."
+        )
+    if skip is not None:
+        sums[skip] = 1.0
+    return probs / sums[..., None]
+
+
+def _first_true(bad: np.ndarray, skip: np.ndarray | None) -> tuple[int, ...] | None:
+    """The index of the first True entry of ``bad`` outside the rows ``skip``, or None."""
+    if skip is not None:
+        bad[skip] = False
+    return tuple(int(i) for i in np.argwhere(bad)[0]) if bad.any() else None
+
+
+def _named_index(axes: tuple[str, ...], index: tuple[int, ...]) -> str:
+    """`` (state 0, action 1)`` for ``axes=("state", "action")``, ``""`` without names."""
+    if not axes:
+        return ""
+    return " (" + ", ".join(f"{axis} {i}" for axis, i in zip(axes, index, strict=False)) + ")"
 
 
 class UnknownKeywordError(InvalidParameterError, TypeError):

@@ -29,13 +29,14 @@ import math
 import numbers
 import warnings
 from collections.abc import Callable
+from contextlib import AbstractContextManager, nullcontext
 from dataclasses import dataclass
 from typing import Any, NamedTuple
 
 import numpy as np
 
 from ._errors import InvalidParameterError, TdkitError
-from ._model_args import _check_mdp, _check_values, _policy_probabilities
+from ._model_args import _policy_probabilities, _require_mdp, _require_values
 from ._progress import progress_bar
 from ._validation import require_in_range, require_positive_int
 from .envs.finite import FiniteMDP
@@ -224,8 +225,8 @@ def action_values(mdp: FiniteMDP, v: Any) -> np.ndarray:
     array([[1., 1.],
            [0., 0.]])
     """
-    mdp = _check_mdp("action_values", mdp)
-    return _action_values(mdp, _check_values("action_values", "v", v, (mdp.n_states,)))
+    mdp = _require_mdp("action_values", mdp)
+    return _action_values(mdp, _require_values("action_values", "v", v, (mdp.n_states,)))
 
 
 def bellman_optimality_operator(mdp: FiniteMDP, v: Any) -> np.ndarray:
@@ -238,8 +239,8 @@ def bellman_optimality_operator(mdp: FiniteMDP, v: Any) -> np.ndarray:
     -------
     ndarray, shape (S,)
     """
-    mdp = _check_mdp("bellman_optimality_operator", mdp)
-    v = _check_values("bellman_optimality_operator", "v", v, (mdp.n_states,))
+    mdp = _require_mdp("bellman_optimality_operator", mdp)
+    v = _require_values("bellman_optimality_operator", "v", v, (mdp.n_states,))
     return _look_ahead(mdp, v).max(axis=1)
 
 
@@ -251,8 +252,8 @@ def bellman_expectation_operator(mdp: FiniteMDP, v: Any, policy: Any) -> np.ndar
     ndarray, shape (S,)
     """
     owner = "bellman_expectation_operator"
-    mdp = _check_mdp(owner, mdp)
-    v = _check_values(owner, "v", v, (mdp.n_states,))
+    mdp = _require_mdp(owner, mdp)
+    v = _require_values(owner, "v", v, (mdp.n_states,))
     pi = _policy_probabilities(owner, mdp, policy)
     return (pi * _action_values(mdp, v)).sum(axis=1)
 
@@ -296,11 +297,11 @@ def bellman_residual(mdp: FiniteMDP, q: Any, policy: Any = None) -> float:
     0.5
     """
     owner = "bellman_residual"
-    mdp = _check_mdp(owner, mdp)
+    mdp = _require_mdp(owner, mdp)
     array = np.asarray(q, dtype=np.float64)
     pi = None if policy is None else _policy_probabilities(owner, mdp, policy)
     if array.ndim == 1:
-        v = _check_values(owner, "v", array, (mdp.n_states,))
+        v = _require_values(owner, "v", array, (mdp.n_states,))
         if pi is None:
             target = _look_ahead(mdp, v).max(axis=1)
         else:
@@ -310,7 +311,7 @@ def bellman_residual(mdp: FiniteMDP, q: Any, policy: Any = None) -> float:
     masks = mdp.masks
     if masks is not None and array.shape == shape:
         array = np.where(masks, array, 0.0)  # masked entries (e.g. -inf) are not compared
-    q = _check_values(owner, "q", array, shape)
+    q = _require_values(owner, "q", array, shape)
     if pi is None:
         u = (q if masks is None else np.where(masks, q, _NEG_INF)).max(axis=1)
     else:
@@ -361,7 +362,7 @@ def greedy_policy(q: Any, *, atol: float = 1e-9) -> GreedyPolicy:
         raise InvalidParameterError(
             f"{owner}: q[{s}, :] is -inf everywhere; every state needs a finite action value."
         )
-    _check_values(owner, "q", np.where(excluded, 0.0, array), array.shape)
+    _require_values(owner, "q", np.where(excluded, 0.0, array), array.shape)
     atol = require_in_range(owner, "atol", atol, 0.0, math.inf)
     maximisers = array >= array.max(axis=1, keepdims=True) - atol
     return GreedyPolicy(np.argmax(maximisers, axis=1), maximisers)
@@ -540,9 +541,11 @@ def _evaluate_krylov(chain: FiniteMDP, tol: float) -> tuple[np.ndarray, bool] | 
     return v, met
 
 
-def _progress_bar(owner: str, enabled: bool, total: int) -> Any:
-    """A bar counting sweeps (:func:`tdkit._progress.progress_bar`), or None."""
-    return progress_bar(owner, total, enabled, unit="sweep", desc=owner)
+def _progress_bar(owner: str, enabled: bool, total: int) -> AbstractContextManager[Any]:
+    """``with _progress_bar(...) as bar``: a bar counting sweeps
+    (:func:`tdkit._progress.progress_bar`), closed on exit, or None when not ``enabled``."""
+    bar = progress_bar(owner, total, enabled, unit="sweep", desc=owner)
+    return nullcontext() if bar is None else bar
 
 
 def _fixed_point(
@@ -571,8 +574,7 @@ def _fixed_point(
     """
     best_change, best_sweep = math.inf, 0
     change = math.inf
-    bar = _progress_bar(owner, progress, max_iterations)
-    try:
+    with _progress_bar(owner, progress, max_iterations) as bar:
         for sweep in range(1, max_iterations + 1):
             new = step(v)
             change = float(np.max(np.abs(new - v), initial=0.0))
@@ -603,9 +605,6 @@ def _fixed_point(
                     stacklevel=3,
                 )
                 return v, sweep, change
-    finally:
-        if bar is not None:
-            bar.close()
     advice = (
         "policy_iteration(mdp) or tdkit.solve(mdp) (a few exact evaluations), or raise "
         "max_iterations"
@@ -724,7 +723,7 @@ def evaluate_policy(
     array([0.  , 0.25, 0.5 , 0.75, 0.  ])
     """
     owner = "evaluate_policy"
-    mdp = _check_mdp(owner, mdp)
+    mdp = _require_mdp(owner, mdp)
     pi = _policy_probabilities(owner, mdp, policy)
     if method not in ("auto", "direct", "sparse", "iterative"):
         raise InvalidParameterError(
@@ -775,7 +774,7 @@ def _finish(
     )
 
 
-def _check_exploration(owner: str, exploration: Any) -> float:
+def _require_exploration(owner: str, exploration: Any) -> float:
     if isinstance(exploration, bool) or not isinstance(exploration, numbers.Real):
         raise InvalidParameterError(
             f"{owner}: exploration must be a float in [0, 1] (the ε of ε-greedy); got "
@@ -953,16 +952,16 @@ def value_iteration(
     (1.8, 'epsilon-greedy(0.2)')
     """
     owner = "value_iteration"
-    mdp = _check_mdp(owner, mdp)
+    mdp = _require_mdp(owner, mdp)
     tol = require_in_range(owner, "tol", tol, 0.0, math.inf, low_open=True)
-    epsilon = _check_exploration(owner, exploration)
+    epsilon = _require_exploration(owner, exploration)
     cap = DEFAULT_MAX_ITERATIONS if max_iterations is None else max_iterations
     cap = require_positive_int(owner, "max_iterations", cap)
     gamma = mdp.gamma
     v = (
         np.zeros(mdp.n_states)
         if v0 is None
-        else _check_values(owner, "v0", v0, (mdp.n_states,)).copy()
+        else _require_values(owner, "v0", v0, (mdp.n_states,)).copy()
     )
     if gamma == 1.0:
         _require_terminal_reachable(owner, mdp)
@@ -1046,10 +1045,10 @@ def policy_iteration(
     -3
     """
     owner = "policy_iteration"
-    mdp = _check_mdp(owner, mdp)
+    mdp = _require_mdp(owner, mdp)
     max_iterations = require_positive_int(owner, "max_iterations", max_iterations)
     atol = require_in_range(owner, "atol", atol, 0.0, math.inf)
-    epsilon = _check_exploration(owner, exploration)
+    epsilon = _require_exploration(owner, exploration)
     masks = mdp.masks
     if initial_policy is None:
         if mdp.gamma == 1.0:

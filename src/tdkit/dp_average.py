@@ -45,7 +45,7 @@ from typing import Any
 import numpy as np
 
 from ._errors import InvalidParameterError
-from ._model_args import _check_mdp, _policy_probabilities
+from ._model_args import _policy_probabilities, _require_mdp
 from ._validation import require_in_range, require_positive_int
 from .envs.finite import FiniteMDP
 
@@ -191,10 +191,10 @@ def relative_value_iteration(
     [0.0, -1.5]
     """
     owner = "relative_value_iteration"
-    mdp = _check_mdp(owner, mdp)
+    mdp = _require_mdp(owner, mdp)
     tol = require_in_range(owner, "tol", tol, 0.0, np.inf, low_open=True, high_open=True)
     max_iterations = require_positive_int(owner, "max_iterations", max_iterations)
-    ref = _check_state(owner, mdp, reference_state)
+    ref = _require_state(owner, mdp, reference_state)
     tau = _APERIODICITY
     rewards = mdp.R
     if mdp.masks is not None:  # masked actions never enter the max (their q is -inf)
@@ -226,7 +226,7 @@ def relative_value_iteration(
     )
 
 
-def _check_state(owner: str, mdp: FiniteMDP, state: Any) -> int:
+def _require_state(owner: str, mdp: FiniteMDP, state: Any) -> int:
     if isinstance(state, bool) or not isinstance(state, numbers.Integral) or not (
         0 <= state < mdp.n_states
     ):
@@ -326,7 +326,7 @@ def policy_gain(mdp: FiniteMDP, policy: Any) -> float:
     (1.0, 1.5)
     """
     owner = "policy_gain"
-    mdp = _check_mdp(owner, mdp)
+    mdp = _require_mdp(owner, mdp)
     probs = _policy_probabilities(owner, mdp, policy)
     chain, rewards = _restart_chain(mdp, probs)
     n = chain.shape[0]

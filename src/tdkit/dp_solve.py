@@ -73,7 +73,7 @@ from typing import Any
 import numpy as np
 
 from ._errors import InvalidParameterError
-from ._model_args import _check_mdp, _check_values
+from ._model_args import _require_mdp, _require_values
 from ._validation import require_in_range, require_positive_int
 from .dp import (
     DEFAULT_MAX_ITERATIONS,
@@ -81,10 +81,10 @@ from .dp import (
     Solution,
     _allowed_counts,
     _backup,
-    _check_exploration,
     _finish,
     _look_ahead,
     _progress_bar,
+    _require_exploration,
     policy_iteration,
     value_iteration,
 )
@@ -109,11 +109,6 @@ _AUTO_MPI_CAP = 1000
 
 _BLOCKS = 16
 """Blocks per Gauss-Seidel sweep (enough reuse within a sweep, little numpy overhead)."""
-
-
-def _bounds(u: np.ndarray, backed: np.ndarray) -> tuple[float, float]:
-    delta = backed - u
-    return float(delta.min()), float(delta.max())
 
 
 def _certified(
@@ -147,6 +142,33 @@ def _certified(
     )
 
 
+def _stop_test(
+    owner: str,
+    mdp: FiniteMDP,
+    u: np.ndarray,
+    q: np.ndarray,
+    backed: np.ndarray,
+    target: float,
+    iterations: int,
+    epsilon: float,
+    bar: Any,
+) -> tuple[Solution | None, float]:
+    """The stopping rule of both iterative solvers: ``(solution, span)``.
+
+    ``backed`` is ``T u`` and ``q`` the look-ahead it came from; the solution
+    (:func:`_certified`) is returned once the span of ``T u - u`` is below
+    ``target``, else None. The bar, if any, shows the span.
+    """
+    delta = backed - u
+    low, high = float(delta.min()), float(delta.max())
+    if bar is not None:
+        bar.set_postfix(span=f"{high - low:.3g}", refresh=False)
+    if high - low < target:
+        return _certified(owner, mdp, u, q, low, high, iterations=iterations,
+                          epsilon=epsilon), high - low
+    return None, high - low
+
+
 def _policy_arrays(
     mdp: FiniteMDP, next_states: np.ndarray, probs: np.ndarray, policy: np.ndarray
 ) -> Callable[[np.ndarray], np.ndarray]:
@@ -176,19 +198,15 @@ def _modified_policy_iteration(
     owner = "modified_policy_iteration"
     masks, counts = mdp.masks, _allowed_counts(mdp)
     next_states, probs = mdp._successor_arrays()
-    bar = _progress_bar(owner, progress, max_iterations)
-    try:
+    with _progress_bar(owner, progress, max_iterations) as bar:
         for iteration in range(1, max_iterations + 1):
             q = _look_ahead(mdp, u)
             backed = _backup(q, masks, epsilon, counts)
-            low, high = _bounds(u, backed)
             if bar is not None:
                 bar.update(1)
-                bar.set_postfix(span=f"{high - low:.3g}", refresh=False)
-            if high - low < target:
-                return _certified(
-                    owner, mdp, u, q, low, high, iterations=iteration, epsilon=epsilon
-                )
+            solution, span = _stop_test(owner, mdp, u, q, backed, target, iteration, epsilon, bar)
+            if solution is not None:
+                return solution
             u = backed
             if epsilon == 0.0:
                 step = _policy_arrays(mdp, next_states, probs, np.argmax(q, axis=1))
@@ -200,10 +218,7 @@ def _modified_policy_iteration(
 
             for _ in range(evaluation_sweeps):
                 u = step(u)
-    finally:
-        if bar is not None:
-            bar.close()
-    raise _capped(owner, max_iterations, high - low, target)
+    raise _capped(owner, max_iterations, span, target)
 
 
 def _epsilon_weights(q: np.ndarray, masks: np.ndarray | None, epsilon: float) -> np.ndarray:
@@ -242,8 +257,7 @@ def _gauss_seidel(
     block_counts = [
         counts if np.isscalar(counts) else counts[block] for block in blocks  # type: ignore[index]
     ]
-    bar = _progress_bar(owner, progress, max_iterations)
-    try:
+    with _progress_bar(owner, progress, max_iterations) as bar:
         for sweep in range(1, max_iterations + 1):
             for block, block_count in zip(blocks, block_counts, strict=True):
                 q = rewards[block] + gamma * np.einsum(
@@ -258,17 +272,11 @@ def _gauss_seidel(
                 bar.update(1)
             if sweep % check_every == 0 or sweep == max_iterations:
                 q = _look_ahead(mdp, u)
-                low, high = _bounds(u, _backup(q, masks, epsilon, counts))
-                if bar is not None:
-                    bar.set_postfix(span=f"{high - low:.3g}", refresh=False)
-                if high - low < target:
-                    return _certified(
-                        owner, mdp, u, q, low, high, iterations=sweep, epsilon=epsilon
-                    )
-    finally:
-        if bar is not None:
-            bar.close()
-    raise _capped(owner, max_iterations, high - low, target)
+                backed = _backup(q, masks, epsilon, counts)
+                solution, span = _stop_test(owner, mdp, u, q, backed, target, sweep, epsilon, bar)
+                if solution is not None:
+                    return solution
+    raise _capped(owner, max_iterations, span, target)
 
 
 def _capped(owner: str, cap: int, span: float, target: float) -> ConvergenceError:
@@ -346,13 +354,13 @@ def solve(
     True
     """
     owner = "solve"
-    mdp = _check_mdp(owner, mdp)
+    mdp = _require_mdp(owner, mdp)
     if method not in METHODS:
         raise InvalidParameterError(
             f"{owner}: method must be one of {', '.join(map(repr, METHODS))}; got {method!r}."
         )
     tol = require_in_range(owner, "tol", tol, 0.0, math.inf, low_open=True)
-    epsilon = _check_exploration(owner, exploration)
+    epsilon = _require_exploration(owner, exploration)
     cap = DEFAULT_MAX_ITERATIONS if max_iterations is None else max_iterations
     cap = require_positive_int(owner, "max_iterations", cap)
     evaluation_sweeps = require_positive_int(owner, "evaluation_sweeps", evaluation_sweeps)
@@ -388,7 +396,7 @@ def solve(
             f"{owner}: method={method!r} bounds its error through the discount and needs "
             "gamma < 1; got gamma=1. Use method='policy_iteration' (or 'auto')."
         )
-    u = np.zeros(mdp.n_states) if v0 is None else _check_values(
+    u = np.zeros(mdp.n_states) if v0 is None else _require_values(
         owner, "v0", v0, (mdp.n_states,)
     ).copy()
     u[mdp.terminal] = 0.0

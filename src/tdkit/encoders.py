@@ -242,7 +242,61 @@ class IntegerEncoder(DiscreteEncoder):
         return DiscreteEncoder.to_env(self, index)
 
 
-class MultiDiscreteEncoder(_Encoder):
+class _MixedRadixEncoder(_Encoder):
+    """Integer vectors numbered row-major (mixed radix), the one numbering of
+    :class:`MultiDiscreteEncoder` and :class:`TupleEncoder`.
+
+    Component ``k`` lies in ``[start_k, start_k + size_k)``; the index is
+    ``sum_k (v_k - start_k) * prod_{j > k} size_j``, the order of
+    :func:`numpy.ravel_multi_index`. Subclasses read the components of a
+    value (``_components``) and build a value from them (``to_env``).
+    """
+
+    _range_text: ClassVar[str]
+    """How messages name the range of component ``k``."""
+
+    def _set_components(self, owner: str, sizes: list[int], starts: list[int]) -> None:
+        self.n_states = self.n_actions = _checked_product(owner, sizes)
+        self._dims = tuple(zip(sizes, starts, strict=True))
+        self._strides = tuple(math.prod(sizes[k + 1 :]) for k in range(len(sizes)))
+
+    def encode(self, obs: Any) -> int:
+        """Return the mixed-radix index of ``obs``."""
+        return self._index(obs, "observation")
+
+    def to_index(self, action: Any) -> int:
+        """Return the column index of ``action``."""
+        return self._index(action, "action")
+
+    def _components(self, value: Any, what: str) -> Sequence[Any]:
+        """The components of ``value`` (ints, or integers that ``_index`` converts), or
+        raise naming ``what``."""
+        raise NotImplementedError
+
+    def _index(self, value: Any, what: str) -> int:
+        index = 0
+        for v, (size, start) in zip(self._components(value, what), self._dims, strict=False):
+            digit = (v if type(v) is int else _as_int(v, self, what)) - start
+            if not 0 <= digit < size:
+                raise InvalidParameterError(
+                    f"{_short(self)}: {what} {_short(value)} is out of range; component k must "
+                    f"lie in {self._range_text}."
+                )
+            index = index * size + digit
+        return index
+
+    def _values(self, index: int) -> list[int]:
+        """The components of the vector whose index is ``index``."""
+        i = _as_int(index, self, "index")
+        if not 0 <= i < self.n_states:
+            raise _out_of_range(self, "index", index, 0, self.n_states)
+        return [
+            start + (i // stride) % size
+            for (size, start), stride in zip(self._dims, self._strides, strict=True)
+        ]
+
+
+class MultiDiscreteEncoder(_MixedRadixEncoder):
     """Integer vectors (gymnasium ``MultiDiscrete(nvec, start=start)``).
 
     The row index is the row-major (C order) mixed-radix number of
@@ -269,6 +323,7 @@ class MultiDiscreteEncoder(_Encoder):
     """
 
     kind = "multi_discrete"
+    _range_text = "[start[k], start[k] + nvec[k])"
 
     def __init__(self, nvec: Any, start: Any = None) -> None:
         owner = type(self).__name__
@@ -286,15 +341,7 @@ class MultiDiscreteEncoder(_Encoder):
                     f"{owner}: start must have the shape of nvec {self._nvec.shape}; got "
                     f"{start!r} of shape {self._start.shape}."
                 )
-        self.n_states = self.n_actions = _checked_product(owner, self._nvec.ravel().tolist())
-        flat = self._nvec.ravel()
-        strides = np.ones_like(flat)
-        for k in range(flat.size - 2, -1, -1):
-            strides[k] = strides[k + 1] * flat[k + 1]
-        self._flat_nvec = flat
-        self._flat_start = self._start.ravel()
-        self._strides = strides
-        self._dims = tuple(zip(flat.tolist(), self._flat_start.tolist(), strict=True))
+        self._set_components(owner, self._nvec.ravel().tolist(), self._start.ravel().tolist())
 
     @property
     def nvec(self) -> np.ndarray:
@@ -309,44 +356,24 @@ class MultiDiscreteEncoder(_Encoder):
     def _params(self) -> dict[str, Any]:
         return {"nvec": self._nvec.tolist(), "start": self._start.tolist()}
 
-    def encode(self, obs: Any) -> int:
-        """Return the mixed-radix index of the integer vector ``obs``."""
-        return self._index(obs, "observation")
-
-    def to_index(self, action: Any) -> int:
-        """Return the column index of the integer vector ``action``."""
-        return self._index(action, "action")
-
     def to_env(self, index: int) -> np.ndarray:
         """Return the integer vector (``int64`` array shaped like ``nvec``) of ``index``."""
-        i = _as_int(index, self, "index")
-        if not 0 <= i < self.n_states:
-            raise _out_of_range(self, "index", index, 0, self.n_states)
-        digits = (i // self._strides) % self._flat_nvec
-        return (digits + self._flat_start).reshape(self._nvec.shape)
+        return np.array(self._values(index), dtype=np.int64).reshape(self._nvec.shape)
 
-    def _index(self, value: Any, what: str) -> int:
+    def _components(self, value: Any, what: str) -> list[int]:
         # Python ints and a loop beat numpy's per-call overhead for the few
         # components a tabular problem has.
         a = value if type(value) is np.ndarray else np.asarray(value)
-        if a.shape != self._nvec.shape or a.dtype.kind not in "iub":
+        kind = a.dtype.kind
+        if a.shape != self._nvec.shape or kind not in "iub":
             raise InvalidParameterError(
                 f"{_short(self)}: {what} must be an integer array of shape {self._nvec.shape}; "
                 f"got {_short(value)} (shape {a.shape}, dtype {a.dtype})."
             )
-        index = 0
-        for v, (size, start) in zip(a.ravel().tolist(), self._dims, strict=False):
-            digit = v - start
-            if not 0 <= digit < size:
-                raise InvalidParameterError(
-                    f"{_short(self)}: {what} {_short(value)} is out of range; component k must "
-                    "lie in [start[k], start[k] + nvec[k])."
-                )
-            index = index * size + digit
-        return index
+        return (a.astype(np.int64) if kind == "b" else a).ravel().tolist()
 
 
-class TupleEncoder(_Encoder):
+class TupleEncoder(_MixedRadixEncoder):
     """Tuples of integers (gymnasium ``Tuple`` of ``Discrete`` spaces).
 
     Component ``k`` takes the values ``starts[k], ..., starts[k] + sizes[k] - 1``;
@@ -372,6 +399,7 @@ class TupleEncoder(_Encoder):
     """
 
     kind = "tuple"
+    _range_text = "[starts[k], starts[k] + sizes[k])"
 
     def __init__(self, sizes: Sequence[int], starts: Sequence[int] | None = None) -> None:
         owner = type(self).__name__
@@ -391,32 +419,16 @@ class TupleEncoder(_Encoder):
                 )
         self.sizes = tuple(sizes_list)
         self.starts = tuple(starts_list)
-        self.n_states = self.n_actions = _checked_product(owner, sizes_list)
-        self._dims = tuple(zip(self.sizes, self.starts, strict=True))
-        self._strides = tuple(math.prod(self.sizes[k + 1 :]) for k in range(len(self.sizes)))
+        self._set_components(owner, sizes_list, starts_list)
 
     def _params(self) -> dict[str, Any]:
         return {"sizes": list(self.sizes), "starts": list(self.starts)}
 
-    def encode(self, obs: Any) -> int:
-        """Return the mixed-radix index of the tuple of integers ``obs``."""
-        return self._index(obs, "observation")
-
-    def to_index(self, action: Any) -> int:
-        """Return the column index of the tuple of integers ``action``."""
-        return self._index(action, "action")
-
     def to_env(self, index: int) -> tuple[int, ...]:
         """Return the tuple of Python ints whose index is ``index``."""
-        i = _as_int(index, self, "index")
-        if not 0 <= i < self.n_states:
-            raise _out_of_range(self, "index", index, 0, self.n_states)
-        return tuple(
-            start + (i // stride) % size
-            for (size, start), stride in zip(self._dims, self._strides, strict=True)
-        )
+        return tuple(self._values(index))
 
-    def _index(self, value: Any, what: str) -> int:
+    def _components(self, value: Any, what: str) -> Sequence[Any]:
         try:
             if len(value) != len(self._dims):
                 raise TypeError
@@ -425,16 +437,7 @@ class TupleEncoder(_Encoder):
                 f"{_short(self)}: {what} must be a sequence of {len(self._dims)} integers; got "
                 f"{_short(value)}."
             ) from None
-        index = 0
-        for v, (size, start) in zip(value, self._dims, strict=False):  # lengths checked
-            digit = (v if type(v) is int else _as_int(v, self, what)) - start
-            if not 0 <= digit < size:
-                raise InvalidParameterError(
-                    f"{_short(self)}: {what} {_short(value)} is out of range; component k must lie "
-                    "in [starts[k], starts[k] + sizes[k])."
-                )
-            index = index * size + digit
-        return index
+        return value
 
 
 class BinEncoder(_Encoder):

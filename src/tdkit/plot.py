@@ -30,7 +30,7 @@ import numpy as np
 
 from ._errors import InvalidParameterError
 from ._seeding import SeedLike, as_generator
-from ._validation import require_in_range, require_positive_int
+from ._validation import require_float_array, require_in_range, require_positive_int
 from .envs.finite import FiniteMDP
 from .envs.problems import KING_ACTIONS
 from .runs._results import RunRecord, SweepResult, setting_label
@@ -72,15 +72,9 @@ def _run_returns(owner: str, item: Any, where: str) -> np.ndarray:
     if isinstance(item, History):
         returns = item.returns
     else:
-        try:
-            returns = np.asarray(item, dtype=np.float64)
-        except (TypeError, ValueError):
-            returns = None
-        if returns is None or returns.ndim != 1:
-            raise InvalidParameterError(
-                f"{owner}: {where} must be a History, a RunRecord or a 1-D array of returns; "
-                f"got {item!r:.80}."
-            )
+        returns = require_float_array(
+            owner, where, item, what="a History, a RunRecord or a 1-D array of returns", ndim=1
+        )
     if returns.size == 0:
         raise InvalidParameterError(
             f"{owner}: {where} has no episodes; train for at least one episode first."
@@ -316,12 +310,7 @@ def _pair(owner: str, name: str, value: Any) -> tuple[int, int]:
 def _grid_values(owner: str, values: Any, grid: tuple[int, int]) -> np.ndarray:
     rows, cols = grid
     n = rows * cols
-    try:
-        array = np.asarray(values, dtype=np.float64)
-    except (TypeError, ValueError):
-        raise InvalidParameterError(
-            f"{owner}: values must be an array of numbers; got {values!r:.80}."
-        ) from None
+    array = require_float_array(owner, "values", values, what="an array of numbers")
     if array.shape in ((n,), (rows, cols)):
         grid_values = array.reshape(rows, cols)
     elif array.ndim == 2 and array.shape[0] == n:

@@ -46,7 +46,7 @@ import numpy as np
 
 from ._errors import InvalidParameterError
 from ._seeding import SeedLike, as_generator
-from ._validation import require_in_range, require_positive_int
+from ._validation import require_float_array, require_in_range, require_positive_int
 
 __all__ = [
     # point estimates
@@ -74,12 +74,7 @@ _MAX_TERMS = 10_000
 
 # ---------------------------------------------------------------- point estimates
 def _scores(owner: str, scores: Any, *, min_size: int = 1) -> np.ndarray:
-    try:
-        array = np.asarray(scores, dtype=np.float64)
-    except (TypeError, ValueError):
-        raise InvalidParameterError(
-            f"{owner}: scores must be an array of real numbers; got {scores!r:.80}."
-        ) from None
+    array = require_float_array(owner, "scores", scores)
     if array.ndim == 0:
         array = array.reshape(1)
     if array.shape[0] < min_size or array.size == 0:

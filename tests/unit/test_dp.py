@@ -252,6 +252,8 @@ def test_policy_iteration_with_gamma_one_starts_from_a_proper_policy():
         (np.full(16, 4), "policy[0] = 4 is not an action index in [0, 4)"),
         (np.full((16, 4), 0.3), "policy[0, :] sums to 1.2"),
         (np.full(16, 0.5), "must hold action indices"),
+        (np.tile([1.5, -0.5, 0.0, 0.0], (16, 1)), "policy[0, 1] = -0.5 is negative"),
+        (np.full((16, 4), "x"), "policy must be an array of real numbers"),
     ],
 )
 def test_bad_policies_are_rejected(policy, fragment):
@@ -272,6 +274,8 @@ def test_bad_arguments_are_rejected():
         action_values(mdp, np.zeros(3))
     with pytest.raises(InvalidParameterError, match=r"q must have shape \(25, 4\)"):
         bellman_residual(mdp, np.zeros((25, 3)))
+    with pytest.raises(InvalidParameterError, match="v0 must be an array of real numbers"):
+        value_iteration(mdp, v0=[[0.0], [1.0, 2.0]])  # ragged: numpy's own error, named
 
 
 def test_large_sparse_evaluation_methods_agree():

@@ -135,6 +135,12 @@ def test_multidiscrete_with_matrix_nvec_flattens_in_c_order() -> None:
     np.testing.assert_array_equal(enc.to_env(enc.encode(obs)), obs)
 
 
+def test_multidiscrete_reads_a_boolean_vector_as_zeros_and_ones() -> None:
+    # A MultiBinary-like observation: True/False are the digits 1/0 (row-major, as above).
+    enc = MultiDiscreteEncoder([2, 2, 2])
+    assert enc.encode(np.array([True, False, True])) == enc.encode([1, 0, 1]) == 5
+
+
 @pytest.mark.parametrize(
     ("obs", "fragment"),
     [

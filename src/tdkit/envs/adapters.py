@@ -217,7 +217,7 @@ class EnvAdapter(gymnasium.Env):
             raise InvalidParameterError(
                 f"EnvAdapter: api must be one of {', '.join(map(repr, _APIS))}; got {api!r}."
             )
-        _check_has_reset_step(env)
+        _require_reset_step(env)
         self.env = env
         self.api = api
         self.observation_space = getattr(env, "observation_space", None)
@@ -624,7 +624,7 @@ def _id_of(env_id: Any) -> str:
     return env_id if isinstance(env_id, str) else getattr(env_id, "id", repr(env_id))
 
 
-def _check_has_reset_step(env: Any) -> None:
+def _require_reset_step(env: Any) -> None:
     if isinstance(env, type):
         raise EnvironmentProtocolError(
             f"adapt: got the class {env.__name__}, not an instance; pass {env.__name__}(...)."

@@ -26,15 +26,18 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from .._errors import EnvironmentProtocolError, InvalidParameterError
-from .._validation import require_in_range
+from .._validation import (
+    PROBABILITY_TOLERANCE,
+    require_float_array,
+    require_in_range,
+    require_probability_rows,
+)
 
 if TYPE_CHECKING:
     from .model_env import FiniteMDPEnv
 
 __all__ = ["FiniteMDP"]
 
-_PROB_ATOL = 1e-8
-"""Allowed deviation of a probability row's sum from 1 (then renormalised)."""
 
 _REMOVAL = "0.3.0"
 """Version that removes the deprecated keyword spellings."""
@@ -79,12 +82,7 @@ def _readonly(array: np.ndarray) -> np.ndarray:
 
 
 def _as_float_array(owner: str, name: str, value: Any) -> np.ndarray:
-    try:
-        array = np.array(value, dtype=np.float64)
-    except (TypeError, ValueError) as exc:
-        raise InvalidParameterError(
-            f"{owner}: {name} must be an array of real numbers; got {value!r:.80} ({exc})."
-        ) from None
+    array = require_float_array(owner, name, value, copy=True)
     bad = ~np.isfinite(array)
     if bad.any():
         index = tuple(int(i) for i in np.argwhere(bad)[0])
@@ -95,41 +93,41 @@ def _as_float_array(owner: str, name: str, value: Any) -> np.ndarray:
     return array
 
 
-def _check_shape(owner: str, name: str, array: np.ndarray, expected: tuple, text: str) -> None:
+def _require_shape(owner: str, name: str, array: np.ndarray, expected: tuple, text: str) -> None:
     if array.shape != expected:
         raise InvalidParameterError(
             f"{owner}: {name} must have shape {text} = {expected}; got shape {array.shape}."
         )
 
 
-def _check_probabilities(
-    owner: str, name: str, probs: np.ndarray, skip_rows: np.ndarray, axis_names: str
-) -> np.ndarray:
-    """Validate probability rows along the last axis and renormalise them.
+def _reward_arrays(
+    owner: str, name: str, rewards: Any, probs: np.ndarray, terminal: np.ndarray, last: str
+) -> tuple[np.ndarray, np.ndarray | None]:
+    """``(expected (S, A), outcome rewards or None)`` from ``rewards`` of shape (S, A) or
+    ``probs.shape``; terminal states get reward 0.
 
-    ``skip_rows`` (S,) marks states (terminal) whose rows are not checked.
-    ``axis_names`` names the last index in messages ("next state" or "successor").
+    ``probs`` (S, A, X) holds the outcome probabilities (X next states or
+    successor slots, named ``last`` in messages); the expected reward is
+    their probability-weighted sum over the last axis.
     """
-    negative = probs < 0
-    negative[skip_rows] = False
-    if negative.any():
-        s, a, k = (int(i) for i in np.argwhere(negative)[0])
+    r = _as_float_array(owner, name, rewards)
+    n_states, n_actions = probs.shape[:2]
+    if r.shape == probs.shape:
+        outcome: np.ndarray | None = r
+        expected = np.einsum("sax,sax->sa", probs, r)
+    elif r.shape == (n_states, n_actions):
+        outcome, expected = None, r
+    else:
         raise InvalidParameterError(
-            f"{owner}: {name}[{s}, {a}, {k}] = {float(probs[s, a, k])!r} is negative "
-            f"(state {s}, action {a}, {axis_names} {k}); probabilities must be >= 0."
+            f"{owner}: {name} must have shape (S, A) = {(n_states, n_actions)} or "
+            f"(S, A, {last}) = {probs.shape}; got shape {r.shape}."
         )
-    sums = probs.sum(axis=2)
-    off = np.abs(sums - 1.0) > _PROB_ATOL
-    off[skip_rows] = False
-    if off.any():
-        s, a = (int(i) for i in np.argwhere(off)[0])
-        raise InvalidParameterError(
-            f"{owner}: {name}[{s}, {a}, :] (state {s}, action {a}) sums to {float(sums[s, a])!r}; "
-            f"every row must sum to 1 (tolerance {_PROB_ATOL:g}). Normalise it, e.g. "
-            f"{name} = {name} / {name}.sum(axis=-1, keepdims=True)."
-        )
-    sums[skip_rows] = 1.0
-    return probs / sums[:, :, None]
+    if terminal.any():
+        expected = expected.copy()
+        expected[terminal] = 0.0
+        if outcome is not None:
+            outcome[terminal] = 0.0
+    return expected, outcome
 
 
 def _terminal_mask(owner: str, terminal: Any, n_states: int) -> np.ndarray:
@@ -192,7 +190,7 @@ def _initial_distribution(
         start = (~terminal).astype(np.float64)
         return start / start.sum()
     start = _as_float_array(owner, "initial", initial)
-    _check_shape(owner, "initial", start, (n_states,), "(S,)")
+    _require_shape(owner, "initial", start, (n_states,), "(S,)")
     if (start < 0).any():
         s = int(np.argmax(start < 0))
         raise InvalidParameterError(
@@ -200,7 +198,7 @@ def _initial_distribution(
             "has entries >= 0 that sum to 1."
         )
     total = start.sum()
-    if abs(total - 1.0) > _PROB_ATOL:
+    if abs(total - 1.0) > PROBABILITY_TOLERANCE:
         raise InvalidParameterError(
             f"{owner}: initial sums to {float(total)!r}; it must sum to 1. "
             "Normalise it, e.g. initial = initial / initial.sum()."
@@ -331,29 +329,16 @@ class FiniteMDP:
             )
         gamma = require_in_range(owner, "gamma", gamma, 0.0, 1.0)
         term = _terminal_mask(owner, terminal, n_states)
-        probs = _check_probabilities(owner, "P", probs, term, "next state")
-        rewards = _as_float_array(owner, "R", R)
-        if rewards.shape == (n_states, n_actions, n_states):
-            outcome_rewards: np.ndarray | None = rewards
-            expected = np.einsum("sat,sat->sa", probs, rewards)
-        elif rewards.shape == (n_states, n_actions):
-            outcome_rewards = None
-            expected = rewards
-        else:
-            raise InvalidParameterError(
-                f"{owner}: R must have shape (S, A) = {(n_states, n_actions)} or "
-                f"(S, A, S) = {(n_states, n_actions, n_states)}; got shape {rewards.shape}."
-            )
+        probs = require_probability_rows(
+            owner, "P", probs, skip=term, axes=("state", "action", "next state")
+        )
+        expected, outcome_rewards = _reward_arrays(owner, "R", R, probs, term, "S")
         start = _initial_distribution(owner, initial, term)
         allowed = _action_masks(owner, masks, (n_states, n_actions), term)
         if term.any():
             idx = np.flatnonzero(term)
             probs[idx] = 0.0
             probs[idx, :, idx] = 1.0
-            expected = expected.copy()
-            expected[idx] = 0.0
-            if outcome_rewards is not None:
-                outcome_rewards[idx] = 0.0
         self._set_common(gamma, term, start, expected, allowed)
         self._P = _readonly(probs)
         self._P_flat = probs.reshape(n_states * n_actions, n_states)
@@ -450,22 +435,13 @@ class FiniteMDP:
                 f"range for {n_states} states; indices must be in [0, {n_states})."
             )
         p = _as_float_array(owner, "probs", probs)
-        _check_shape(owner, "probs", p, nxt.shape, "(S, A, K)")
+        _require_shape(owner, "probs", p, nxt.shape, "(S, A, K)")
         gamma = require_in_range(owner, "gamma", gamma, 0.0, 1.0)
         term = _terminal_mask(owner, terminal, n_states)
-        p = _check_probabilities(owner, "probs", p, term, "successor slot")
-        r = _as_float_array(owner, "rewards", rewards)
-        if r.shape == nxt.shape:
-            outcome_rewards: np.ndarray | None = r
-            expected = np.einsum("sak,sak->sa", p, r)
-        elif r.shape == (n_states, n_actions):
-            outcome_rewards = None
-            expected = r
-        else:
-            raise InvalidParameterError(
-                f"{owner}: rewards must have shape (S, A) = {(n_states, n_actions)} or "
-                f"(S, A, K) = {nxt.shape}; got shape {r.shape}."
-            )
+        p = require_probability_rows(
+            owner, "probs", p, skip=term, axes=("state", "action", "successor slot")
+        )
+        expected, outcome_rewards = _reward_arrays(owner, "rewards", rewards, p, term, "K")
         start = _initial_distribution(owner, initial, term)
         allowed = _action_masks(owner, masks, (n_states, n_actions), term)
         nxt = np.array(nxt, dtype=np.intp)
@@ -474,10 +450,6 @@ class FiniteMDP:
             nxt[idx] = idx[:, None, None]
             p[idx] = 0.0
             p[idx, :, 0] = 1.0
-            expected = expected.copy()
-            expected[idx] = 0.0
-            if outcome_rewards is not None:
-                outcome_rewards[idx] = 0.0
         return cls._build_sparse(gamma, term, start, expected, nxt, p, outcome_rewards, allowed)
 
     @classmethod

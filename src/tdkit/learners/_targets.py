@@ -12,7 +12,7 @@ depends on:
 ``double_value``            :math:`q^B(\arg\max_a q^A(a))` (Double Q-learning)
 ``double_coin``             which of its two tables Double Q-learning updates
 ``sampled_value``           :math:`q(A_{t+1})` (SARSA)
-``greedy_index``            an argmax, ties shared uniformly
+``greedy_index``            an argmax, ties shared uniformly (:func:`tdkit._greedy.greedy_pick`)
 ``epsilon_greedy_index``    an ε-greedy draw
 ``softmax_index``           a soft-max (Boltzmann) draw
 ==========================  ==================================================
@@ -39,9 +39,12 @@ Random choices take their uniform numbers ``u`` in [0, 1) from the caller
 (drawn from the caller's own ``numpy.random.Generator``), so two paths given
 the same numbers make the same choices. Ties: the :math:`k` tied greedy
 actions are ranked in index order and ``u`` picks tie
-:math:`\lfloor u k \rfloor`, each with probability :math:`1/k` (the rule of
-:func:`tdkit._greedy.greedy_action`). An ε-greedy choice takes one number
-(see :func:`epsilon_greedy_index`).
+:math:`\lfloor u k \rfloor`, each with probability :math:`1/k`. That rule is
+defined once, in the kernel: ``greedy_index`` and ``greedy_index_rows`` are
+:func:`tdkit._greedy.greedy_pick` and :func:`tdkit._greedy.greedy_pick_rows`
+under the names this module's callers use (the learners' per-step
+:func:`tdkit._greedy.greedy_index` is an adapter over the same function). An
+ε-greedy choice takes one number (see :func:`epsilon_greedy_index`).
 
 Closed form of the ε-greedy expectation. With :math:`n = |\mathcal A|` and
 the greedy set :math:`G = \arg\max_{a \in \mathcal A} q(a)`, the policy is
@@ -88,6 +91,9 @@ from collections.abc import Sequence
 
 import numpy as np
 
+from .._greedy import greedy_pick as greedy_index
+from .._greedy import greedy_pick_rows as greedy_index_rows
+
 __all__ = [
     "double_coin",
     "double_coin_rows",
@@ -123,42 +129,6 @@ def greedy_max(values: Sequence[float], allowed: Sequence[int]) -> float:
         if v > top:
             top = v
     return top
-
-
-def greedy_index(values: Sequence[float], allowed: Sequence[int], u: float) -> int:
-    r"""An allowed action of maximal value: tie :math:`\lfloor u k \rfloor` of the :math:`k` ties.
-
-    Returns -1 when an allowed value is NaN (greedy is then undefined; the
-    caller raises). One pass finds the maximum, its first action and the
-    number of ties; a second pass runs only when there is a tie.
-    """
-    best = allowed[0]
-    top = values[best]
-    k = 1
-    for j in range(1, len(allowed)):
-        a = allowed[j]
-        v = values[a]
-        if v > top:
-            top = v
-            best = a
-            k = 1
-        elif v == top:
-            k += 1
-        elif v != v:
-            return -1
-    if top != top:
-        return -1
-    if k == 1:
-        return best
-    pick = int(u * k)
-    if pick >= k:  # a rescaled u may round up to 1
-        pick = k - 1
-    for a in allowed:
-        if values[a] == top:
-            if pick == 0:
-                return a
-            pick -= 1
-    return -1  # pragma: no cover - only if u >= 1
 
 
 def uniform_index(allowed: Sequence[int], u: float) -> int:
@@ -289,21 +259,6 @@ def _allowed_counts(rows: np.ndarray, mask: np.ndarray | None) -> np.ndarray:
 def greedy_max_rows(rows: np.ndarray, mask: np.ndarray | None) -> np.ndarray:
     """:func:`greedy_max` of every row of ``rows`` (K, A); ``mask`` (K, A) bool or None."""
     return _masked(rows, mask, -np.inf).max(axis=1)
-
-
-def greedy_index_rows(rows: np.ndarray, mask: np.ndarray | None, u: np.ndarray) -> np.ndarray:
-    """:func:`greedy_index` of every row (``u`` of shape (K,)); -1 for rows with NaN."""
-    candidates = _masked(rows, mask, -np.inf)
-    ties = candidates == candidates.max(axis=1, keepdims=True)  # a NaN max: no ties
-    if mask is not None:
-        ties &= mask  # an all -inf row: only allowed actions tie
-    rank = ties.cumsum(axis=1)  # rank[i, j]: ties among rows[i, :j + 1]
-    counts = rank[:, -1]
-    pick = np.minimum((u * counts).astype(np.intp), counts - 1)
-    best = (rank > pick[:, None]).argmax(axis=1)
-    if not counts.all():
-        best[counts == 0] = -1
-    return best
 
 
 def _uniform_index_rows(mask: np.ndarray | None, n_actions: int, u: np.ndarray) -> np.ndarray:

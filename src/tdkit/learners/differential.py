@@ -432,11 +432,12 @@ class DifferentialTD(_AverageReward, _PolicyLearner):
         self._init_average(reward_step_size, initial_average_reward)
 
     def _learn(self, transition: Transition) -> tuple[float, ...]:
-        s, _a, r, s2, terminated, _truncated, _next_mask = transition
+        s, _a, r, s2, terminated, truncated, next_mask = transition
         head = () if self._restart is None else self._close_restart(s, 0)
         if terminated:
             return head + self._hold_restart(s, 0, r)
-        return (*head, self._differential_step(s, 0, r - self.average_reward + self._q[s2, 0]))
+        v_next = self._next_value(s2, next_mask, False, truncated)
+        return (*head, self._differential_step(s, 0, r - self.average_reward + v_next))
 
     def _restart_value(self, s0: int, a0: int) -> float:
-        return float(self._q[s0, 0])
+        return self._next_value(s0, None, False, False)

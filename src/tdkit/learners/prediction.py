@@ -144,6 +144,13 @@ class _PolicyLearner(TabularAgent):
             "values(obs) or values_table."
         )
 
+    # ------------------------------------------------------------------ learning
+    def _next_value(
+        self, s2: int, next_mask: np.ndarray | None, terminated: bool, truncated: bool
+    ) -> float:
+        r"""The bootstrap value :math:`V(S_{t+1})` of TD(0) and TD(λ) (0 after ``terminated``)."""
+        return 0.0 if terminated else float(self._q[s2, 0])
+
     # ------------------------------------------------------------------ acting
     def act(self, obs: Any, *, mask: Any = None, explore: bool = True) -> Any:
         """An action drawn from the given policy (``explore`` is ignored)."""
@@ -231,8 +238,10 @@ class TD0(_PolicyLearner):
     """
 
     def _learn(self, transition: Transition) -> tuple[float, ...]:
-        s, _a, r, s2, terminated, _truncated, _next_mask = transition
-        target = r if terminated else r + self.gamma * self._q[s2, 0]
+        s, _a, r, s2, terminated, truncated, next_mask = transition
+        target = r if terminated else r + self.gamma * self._next_value(
+            s2, next_mask, terminated, truncated
+        )
         return (self._td_step(self._q, self._visits, s, 0, target),)
 
     def fit_batch(
@@ -437,18 +446,12 @@ class TDLambda(_PolicyLearner, TraceLearner):
         action_encoder: Any = None,
     ) -> None:
         self._check_trace_params(lam, trace, trace_cutoff)
-        TabularAgent.__init__(
-            self, n_states, n_actions, gamma=gamma, step_size=step_size, exploration=0.0,
+        _PolicyLearner.__init__(
+            self, n_states, n_actions, policy=policy, gamma=gamma, step_size=step_size,
             initial_value=initial_value, seed=seed, state_encoder=state_encoder,
             action_encoder=action_encoder,
         )
-        self._start_policy(policy)
         self._start_traces()
 
     def _column(self, a: int) -> int:
         return 0
-
-    def _next_value(
-        self, s2: int, next_mask: np.ndarray | None, terminated: bool, truncated: bool
-    ) -> float:
-        return 0.0 if terminated else float(self._q[s2, 0])

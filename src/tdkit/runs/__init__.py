@@ -5,7 +5,13 @@ verifier, comparisons and sweeps) goes through :func:`run_episode`.
 """
 
 from .episode import EndlessEpisodeWarning, EpisodeHooks, EpisodeResult, info_mask, run_episode
-from .faults import AgentFault, check_update_result, checked_calls, describe_exception
+from .faults import (
+    AgentFault,
+    check_update_result,
+    checked_calls,
+    describe_exception,
+    require_update_result,
+)
 from .seeds import RunSeed, episode_seed, root_sequence
 from .vector import agent_roots, train_vector
 
@@ -20,6 +26,7 @@ __all__ = [
     "check_update_result",
     "checked_calls",
     "describe_exception",
+    "require_update_result",
     "episode_seed",
     "info_mask",
     "root_sequence",

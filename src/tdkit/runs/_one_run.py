@@ -36,10 +36,10 @@ __all__ = [
     "run_seeds",
     "train_run",
     "seeded_run",
-    "check_callable",
-    "check_executor",
-    "check_picklable",
-    "check_seeds",
+    "require_callable",
+    "require_executor",
+    "require_picklable",
+    "require_seeds",
 ]
 
 
@@ -130,13 +130,13 @@ def train_run(
     return history, returns
 
 
-def check_callable(owner: str, name: str, value: Any) -> None:
+def require_callable(owner: str, name: str, value: Any) -> None:
     """Raise naming ``owner`` and ``name`` unless ``value`` is callable."""
     if not callable(value):
         raise InvalidParameterError(f"{owner}: {name} must be callable; got {value!r:.80}.")
 
 
-def check_seeds(
+def require_seeds(
     owner: str, seeds: Iterable[Any], *, minimum: int = 1, distinct: bool = True
 ) -> tuple[int, ...]:
     """Return ``seeds`` as a tuple of non-negative ints (at least ``minimum``; distinct)."""
@@ -164,7 +164,7 @@ def check_seeds(
     return result
 
 
-def check_executor(owner: str, executor: Any, method: str = "map") -> None:
+def require_executor(owner: str, executor: Any, method: str = "map") -> None:
     """Raise unless ``executor`` has a callable ``method`` (``map`` or ``submit``)."""
     if not callable(getattr(executor, method, None)):
         raise InvalidParameterError(
@@ -173,7 +173,7 @@ def check_executor(owner: str, executor: Any, method: str = "map") -> None:
         )
 
 
-def check_picklable(owner: str, name: str, value: Any, fix: str) -> None:
+def require_picklable(owner: str, name: str, value: Any, fix: str) -> None:
     """Raise naming ``name`` if ``value`` cannot be sent to a worker process."""
     try:
         ForkingPickler.dumps(value)  # exactly what a process pool does to send it

@@ -8,6 +8,7 @@ machinery that runs them. :mod:`tdkit.sweep` re-exports every public name.
 from __future__ import annotations
 
 import math
+import warnings
 from collections.abc import Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -31,6 +32,9 @@ __all__ = [
 
 METRICS = ("score", "final_return", "mean_return", "eval_return")
 """Per-run numbers that :meth:`SweepResult.summary` can summarise (see :class:`RunRecord`)."""
+
+_REMOVAL = "0.3.0"
+"""Version that removes the deprecated ``per_episode=`` flag."""
 
 SettingSummary = ScoreSummary
 """The summary of one setting's runs: :class:`tdkit.stats.ScoreSummary` (former name)."""
@@ -285,14 +289,14 @@ class SweepResult:
 
         Failed and missing runs are NaN.
         """
-        self._check_metric("SweepResult.scores", metric)
+        self._require_metric("SweepResult.scores", metric)
         table = np.full((len(self.settings), len(self.seeds)), np.nan)
         column = {seed: j for j, seed in enumerate(self.seeds)}
         for run in self.runs:
             table[run.setting_index, column[run.seed]] = getattr(run, metric)
         return table
 
-    def _check_metric(self, owner: str, metric: str) -> None:
+    def _require_metric(self, owner: str, metric: str) -> None:
         if metric not in METRICS:
             raise InvalidParameterError(
                 f"{owner}: metric must be one of {', '.join(map(repr, METRICS))}; got {metric!r}."
@@ -336,7 +340,7 @@ class SweepResult:
             (:func:`tdkit.stats.summarize_scores`).
         """
         owner = "SweepResult.summary"
-        self._check_metric(owner, metric)
+        self._require_metric(owner, metric)
         confidence = require_in_range(owner, "confidence", confidence, 0.0, 1.0,
                                     low_open=True, high_open=True)
         n_resamples = require_positive_int(owner, "n_resamples", n_resamples)
@@ -361,29 +365,31 @@ class SweepResult:
                                          dict(setting)))
         return SweepSummary(tuple(rows), metric, confidence)
 
-    def to_records(self, *, per_episode: bool = False) -> list[dict[str, Any]]:
-        """Flat dicts, one per run (or per run and episode with ``per_episode=True``).
+    def to_records(self, *, per_episode: bool | None = None) -> list[dict[str, Any]]:
+        """Flat dicts, one per run.
 
-        Run rows hold ``setting_index``, the setting's keywords, ``seed``,
+        Rows hold ``setting_index``, the setting's keywords, ``seed``,
         ``agent_seed``, ``episodes``, ``steps``, ``final_return``,
         ``mean_return``, ``eval_return`` (NaN without evaluation) and
         ``score``, and ``error`` (None for a run that finished) when the sweep
-        has failed runs. Episode rows hold ``setting_index``, the keywords,
-        ``seed``, ``episode``, ``return`` and ``length``.
+        has failed runs. One row per run and episode comes from
+        :meth:`to_episode_records`.
+
+        Parameters
+        ----------
+        per_episode : bool, optional
+            Deprecated (a ``FutureWarning``; removed in tdkit 0.3.0): ``True``
+            returned :meth:`to_episode_records`, a different row layout.
         """
+        if per_episode is not None:
+            _warn_per_episode("to_records", "to_episode_records")
+            if per_episode:
+                return self.to_episode_records()
         with_errors = bool(self.failures)
         records = []
         for run in self.runs:
-            head = {"setting_index": run.setting_index, **run.setting, "seed": run.seed}
-            if per_episode:
-                returns, lengths = run.history.returns, run.history.lengths
-                records.extend(
-                    {**head, "episode": i, "return": float(r), "length": int(n)}
-                    for i, (r, n) in enumerate(zip(returns, lengths, strict=True))
-                )
-                continue
             row = {
-                **head,
+                **_run_head(run),
                 "agent_seed": run.agent_seed,
                 "episodes": len(run.history),
                 "steps": run.history.total_steps,
@@ -397,9 +403,53 @@ class SweepResult:
             records.append(row)
         return records
 
-    def to_frame(self, *, per_episode: bool = False) -> Any:
-        """:meth:`to_records` as a pandas DataFrame (needs the ``frame`` extra)."""
-        return _frame("SweepResult.to_frame", self.to_records(per_episode=per_episode))
+    def to_episode_records(self) -> list[dict[str, Any]]:
+        """Flat dicts, one per run and training episode (for plotting with other tools).
+
+        Rows hold ``setting_index``, the setting's keywords, ``seed``,
+        ``episode``, ``return`` and ``length``; runs in sweep order, episodes
+        in the order they ran.
+        """
+        records = []
+        for run in self.runs:
+            head = _run_head(run)
+            returns, lengths = run.history.returns, run.history.lengths
+            records.extend(
+                {**head, "episode": i, "return": float(r), "length": int(n)}
+                for i, (r, n) in enumerate(zip(returns, lengths, strict=True))
+            )
+        return records
+
+    def to_frame(self, *, per_episode: bool | None = None) -> Any:
+        """:meth:`to_records` as a pandas DataFrame (needs the ``frame`` extra).
+
+        ``per_episode`` is deprecated as in :meth:`to_records`; use
+        :meth:`to_episode_frame`.
+        """
+        if per_episode is not None:
+            _warn_per_episode("to_frame", "to_episode_frame")
+            if per_episode:
+                return self.to_episode_frame()
+        return _frame("SweepResult.to_frame", self.to_records())
+
+    def to_episode_frame(self) -> Any:
+        """:meth:`to_episode_records` as a pandas DataFrame (needs the ``frame`` extra)."""
+        return _frame("SweepResult.to_episode_frame", self.to_episode_records())
+
+
+def _run_head(run: RunRecord) -> dict[str, Any]:
+    """The columns that name a run: ``setting_index``, the setting's keywords, ``seed``."""
+    return {"setting_index": run.setting_index, **run.setting, "seed": run.seed}
+
+
+def _warn_per_episode(method: str, replacement: str) -> None:
+    warnings.warn(
+        f"SweepResult.{method}(per_episode=...) is deprecated and will be removed in tdkit "
+        f"{_REMOVAL}: a flag must not change the row layout. Use "
+        f"SweepResult.{replacement}() for one row per run and episode.",
+        FutureWarning,
+        stacklevel=3,
+    )
 
 
 # ---------------------------------------------------------------- errors

@@ -65,7 +65,7 @@ def is_int(value: Any) -> bool:
     return isinstance(value, int) and not isinstance(value, bool)
 
 
-def _check_json(value: Any, where: str) -> None:
+def _require_json(value: Any, where: str) -> None:
     """Refuse JSON nested deeper than the format ever writes (iteratively: no recursion)."""
     stack = [(value, 1)]
     while stack:
@@ -81,7 +81,7 @@ def _check_json(value: Any, where: str) -> None:
             stack.extend((v, depth + 1) for v in item)
 
 
-def _check_meta(meta: dict[str, Any], fmt: str) -> None:
+def _require_meta(meta: dict[str, Any], fmt: str) -> None:
     for key, types in (("class", str), ("params", dict), ("scalars", dict), ("rng", dict),
                        ("extra", (dict, type(None)))):
         require(key in meta, f"meta.{key}", "missing; the file is incomplete.")
@@ -224,7 +224,7 @@ def read(path: str | os.PathLike[str], fmt: str,
             f"{str(path)!r}: its metadata is not valid JSON ({type(exc).__name__}: "
             f"{str(exc)[:200]})."
         ) from None
-    _check_json(meta, f"{str(path)!r}: meta")
+    _require_json(meta, f"{str(path)!r}: meta")
     if not isinstance(meta, dict) or meta.get("format") != fmt:
         found = meta.get("format") if isinstance(meta, dict) else None
         raise StoreError(
@@ -247,7 +247,7 @@ def read(path: str | os.PathLike[str], fmt: str,
         if digest(array) != digests[key]:
             raise StoreError(f"{str(path)!r} was altered: array {key!r} fails its SHA-256 check.")
     try:
-        _check_meta(meta, fmt)
+        _require_meta(meta, fmt)
     except StoreError as exc:
         raise StoreError(f"{str(path)!r}: {exc}") from None
     return meta, contents

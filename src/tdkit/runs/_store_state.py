@@ -111,6 +111,12 @@ def encoder_shape(encoded: Any) -> Any:
     return {k: v for k, v in encoded["__encoder__"].items() if k != "states"}
 
 
+_REBUILD_ERRORS = (InvalidParameterError, CapacityError, TypeError, ValueError, KeyError,
+                   IndexError, AttributeError)
+"""What rebuilding a saved object (a parameter or the learner) raises on a bad file; the
+store turns them into :class:`~tdkit.StoreError` naming the field."""
+
+
 def _decode_param(name: str, value: Any, arrays: dict[str, np.ndarray]) -> Any:
     from ..encoders import from_description
     from ..exploration import exploration_from_description
@@ -140,8 +146,7 @@ def _decode_param(name: str, value: Any, arrays: dict[str, np.ndarray]) -> Any:
             return from_description(inner)
         if tag == "__array__" and inner == f"param/{name}" and inner in arrays:
             return np.array(arrays[inner])
-    except (InvalidParameterError, CapacityError, TypeError, ValueError, KeyError,
-            IndexError, AttributeError) as exc:
+    except _REBUILD_ERRORS as exc:
         raise StoreError(
             f"params.{name}: {value!r:.80} does not describe a valid object "
             f"({type(exc).__name__}: {exc})."
@@ -218,7 +223,7 @@ def agent_state(agent: Any) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
     return meta, arrays
 
 
-def _check_array_values(name: str, kind: str, array: np.ndarray, bound: int | None) -> None:
+def _require_array_values(name: str, kind: str, array: np.ndarray, bound: int | None) -> None:
     base = _base_kind(kind)
     field = f"state/{name}"
     if base in ("values", "state_values"):
@@ -238,7 +243,7 @@ def _check_array_values(name: str, kind: str, array: np.ndarray, bound: int | No
             )
 
 
-def _check_scalar(name: str, kind: str, value: Any, n_states: int, n_actions: int) -> Any:
+def _require_scalar(name: str, kind: str, value: Any, n_states: int, n_actions: int) -> Any:
     """Return the attribute value for a declared scalar, or raise StoreError."""
     field = f"scalars.{name}"
     if kind == "counter":
@@ -292,7 +297,7 @@ def _check_scalar(name: str, kind: str, value: Any, n_states: int, n_actions: in
     return masks
 
 
-def _check_rng(agent: Any, saved: Any) -> dict[str, Any]:
+def _require_rng(agent: Any, saved: Any) -> dict[str, Any]:
     """Validate a generator state against the structure of ``agent``'s own generator."""
     current = agent.rng.bit_generator.state
 
@@ -336,7 +341,7 @@ def _learner_class(name: str, classes: dict[str, type] | None) -> type:
     return table[name]
 
 
-def _check_sizes(cls: type, meta: dict[str, Any], arrays: dict[str, np.ndarray],
+def _require_sizes(cls: type, meta: dict[str, Any], arrays: dict[str, np.ndarray],
                  max_bytes: int) -> tuple[int, int]:
     """Check declared arrays and the implied table size before the learner is built."""
     params = meta["params"]
@@ -390,18 +395,18 @@ def _validated_state(
         base = _base_kind(kind)
         if base in _SCALAR_KINDS:
             require(name in scalars, f"scalars.{name}", "missing; the file is incomplete.")
-            values[name] = _check_scalar(name, base, scalars[name], n_states, n_actions)
+            values[name] = _require_scalar(name, base, scalars[name], n_states, n_actions)
     for name, kind in fields.items():
         if _base_kind(kind) in _ARRAY_KINDS:
             bound_name = kind.partition("<=")[2]
             bound = values.get(bound_name) if bound_name else None
-            _check_array_values(name, kind, arrays[f"state/{name}"], bound)
+            _require_array_values(name, kind, arrays[f"state/{name}"], bound)
             values[name] = arrays[f"state/{name}"]
     has_hooks = any(_base_kind(k) == "hooks" for k in fields.values())
     require((meta["extra"] is not None) == has_hooks, "extra",
              f"{type(agent).__name__} keeps no model state, but the file has some."
              if not has_hooks else f"missing: a {type(agent).__name__} keeps model state.")
-    values["rng"] = _check_rng(agent, meta["rng"])
+    values["rng"] = _require_rng(agent, meta["rng"])
     return values
 
 
@@ -430,12 +435,11 @@ def _apply(agent: Any, values: dict[str, Any], extra: Any) -> None:
 def build(meta: dict[str, Any], arrays: dict[str, np.ndarray],
            classes: dict[str, type] | None, max_bytes: int) -> Any:
     cls = _learner_class(meta["class"], classes)
-    _check_sizes(cls, meta, arrays, max_bytes)
+    _require_sizes(cls, meta, arrays, max_bytes)
     params = {k: _decode_param(k, v, arrays) for k, v in meta["params"].items()}
     try:
         agent = cls(**params)
-    except (InvalidParameterError, CapacityError, TypeError, ValueError, AttributeError,
-            KeyError, IndexError) as exc:
+    except _REBUILD_ERRORS as exc:
         raise StoreError(
             f"params: a {cls.__name__} cannot be built from the saved parameters "
             f"({type(exc).__name__}: {exc})."

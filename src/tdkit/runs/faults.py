@@ -11,6 +11,7 @@ bound methods directly.
 from __future__ import annotations
 
 import numbers
+import warnings
 from collections.abc import Callable, Sequence
 from typing import Any
 
@@ -19,7 +20,16 @@ import numpy as np
 
 from .._text import summarize_exception as describe_exception
 
-__all__ = ["AgentFault", "check_update_result", "checked_calls", "describe_exception"]
+__all__ = [
+    "AgentFault",
+    "check_update_result",
+    "checked_calls",
+    "describe_exception",
+    "require_update_result",
+]
+
+_REMOVAL = "0.3.0"
+"""Version that removes the deprecated ``check_update_result`` spelling."""
 
 
 class AgentFault(Exception):
@@ -34,7 +44,7 @@ class AgentFault(Exception):
         return f"{self.message} (at {self.where})" if self.where else self.message
 
 
-def check_update_result(errors: Any, where: str | None = None) -> tuple[float, ...]:
+def require_update_result(errors: Any, where: str | None = None) -> tuple[float, ...]:
     """Return ``update()``'s result as a tuple of floats, or raise an :class:`AgentFault`."""
     if type(errors) is tuple and all(type(e) is float for e in errors):
         return errors  # the common case, checked cheaply
@@ -60,6 +70,20 @@ def check_update_result(errors: Any, where: str | None = None) -> tuple[float, .
             )
         out.append(float(e))
     return tuple(out)
+
+
+def check_update_result(errors: Any, where: str | None = None) -> tuple[float, ...]:
+    """Deprecated spelling of :func:`require_update_result` (a ``FutureWarning``).
+
+    ``check_*`` names are kept for the verifier's checks; this one validates a value.
+    """
+    warnings.warn(
+        f"tdkit.runs.check_update_result is deprecated and will be removed in tdkit "
+        f"{_REMOVAL}; use tdkit.runs.require_update_result.",
+        FutureWarning,
+        stacklevel=2,
+    )
+    return require_update_result(errors, where)
 
 
 def _action_test(space: Any) -> Callable[[Any], bool]:
@@ -113,6 +137,6 @@ def checked_calls(agent: Any, action_space: Any) -> tuple[Callable, Callable, Ca
             result = update()
         except Exception as exc:
             raise AgentFault(f"update() raised {describe_exception(exc)}") from exc
-        return check_update_result(result)
+        return require_update_result(result)
 
     return checked_act, checked_observe, checked_update

@@ -9,7 +9,7 @@ import gymnasium
 from .._errors import InvalidParameterError
 from ..encoders import DiscreteEncoder
 
-__all__ = ["check_agent_fits"]
+__all__ = ["require_agent_fits"]
 
 
 def _discrete_size(space: Any) -> int | None:
@@ -18,7 +18,7 @@ def _discrete_size(space: Any) -> int | None:
     return None
 
 
-def check_agent_fits(agent: Any, env: Any, *, owner: str = "train") -> None:
+def require_agent_fits(agent: Any, env: Any, *, owner: str = "train") -> None:
     """Raise if ``agent``'s table cannot hold ``env``'s discrete states or actions.
 
     Only agents that declare ``n_states`` / ``n_actions`` (every tdkit
@@ -42,7 +42,7 @@ def check_agent_fits(agent: Any, env: Any, *, owner: str = "train") -> None:
     >>> import gymnasium as gym
     >>> from tdkit import QLearning
     >>> try:
-    ...     check_agent_fits(QLearning(16, 6), gym.make("FrozenLake-v1"))
+    ...     require_agent_fits(QLearning(16, 6), gym.make("FrozenLake-v1"))
     ... except ValueError as exc:
     ...     print(str(exc)[:64])
     train: the agent has 6 actions but the environment's action spac

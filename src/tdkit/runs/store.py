@@ -188,7 +188,7 @@ def save_checkpoint(
     return write(path, FORMAT_CHECKPOINT, meta, arrays)
 
 
-def _check_loop_state(loop: dict[str, Any]) -> dict[str, Any]:
+def _require_loop_state(loop: dict[str, Any]) -> dict[str, Any]:
     for key in ("episode", "total_steps"):
         require(is_int(loop.get(key)) and loop[key] >= 0, f"loop.{key}",
                  f"{loop.get(key)!r:.80} is not an integer >= 0.")
@@ -237,7 +237,7 @@ def load_checkpoint(
         )
     refuse_busy(agent, path)
     try:
-        loop = _check_loop_state(meta["loop"])
+        loop = _require_loop_state(meta["loop"])
         source = build(meta, arrays, {type(agent).__name__: type(agent)}, max_bytes)
         history = read_history(path, meta["history"].get("rows"),
                                 meta["history"].get("digest"), max_bytes)

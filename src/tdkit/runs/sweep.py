@@ -52,10 +52,10 @@ from .._validation import require_positive_int
 from ._dispatch import RunFailure, RunOutcome, dispatch, reissue_warnings
 from ._factories import AgentFactory
 from ._one_run import (
-    check_callable,
-    check_executor,
-    check_picklable,
-    check_seeds,
+    require_callable,
+    require_executor,
+    require_picklable,
+    require_seeds,
     run_seeds,
     seeded_run,
 )
@@ -146,7 +146,7 @@ def expand_settings(settings: Mapping[str, Any] | Sequence[Mapping[str, Any]] | 
         keys = list(settings)
         value_lists = []
         for key in keys:
-            _check_key(owner, key)
+            _require_key(owner, key)
             values = settings[key]
             if isinstance(values, np.ndarray) and values.ndim == 1:
                 values = list(values.tolist())
@@ -180,12 +180,12 @@ def expand_settings(settings: Mapping[str, Any] | Sequence[Mapping[str, Any]] | 
                 f"{setting!r:.80}."
             )
         for key in setting:
-            _check_key(owner, key)
+            _require_key(owner, key)
         result.append(dict(setting))
     return result
 
 
-def _check_key(owner: str, key: Any) -> None:
+def _require_key(owner: str, key: Any) -> None:
     if not isinstance(key, str) or not key.isidentifier():
         raise InvalidParameterError(
             f"{owner}: setting keys are keyword arguments of make_agent and must be "
@@ -359,14 +359,14 @@ def run_sweep(
     owner = "run_sweep"
     if isinstance(make_agent, type):
         make_agent = AgentFactory(make_agent)
-    check_callable(owner, "make_agent", make_agent)
-    check_callable(owner, "make_env", make_env)
+    require_callable(owner, "make_agent", make_agent)
+    require_callable(owner, "make_env", make_env)
     if on_error not in ON_ERROR:
         raise InvalidParameterError(
             f"{owner}: on_error must be 'raise' or 'record'; got {on_error!r}. Use 'record' to "
             "keep going past failed runs and find them in result.failures."
         )
-    seed_list = check_seeds(owner, seeds)
+    seed_list = require_seeds(owner, seeds)
     setting_list = expand_settings(settings)
     if episodes is None and steps is None:
         raise InvalidParameterError(
@@ -384,7 +384,7 @@ def run_sweep(
     tasks = [(index, setting, seed) for index, setting in enumerate(setting_list)
              for seed in seed_list]
     if executor is not None:
-        check_executor(owner, executor, "submit")
+        require_executor(owner, executor, "submit")
         if max_workers is not None:
             raise InvalidParameterError(
                 f"{owner}: max_workers={max_workers!r} sizes the default process pool only; "
@@ -397,11 +397,11 @@ def run_sweep(
         )
         workers = min(workers, len(tasks))
     if workers > 1 or isinstance(executor, ProcessPoolExecutor):
-        check_picklable(owner, "make_agent", make_agent, _FIX_PICKLE)
-        check_picklable(owner, "make_env", make_env, _FIX_PICKLE)
+        require_picklable(owner, "make_agent", make_agent, _FIX_PICKLE)
+        require_picklable(owner, "make_env", make_env, _FIX_PICKLE)
         for setting in setting_list:
             for key, value in setting.items():
-                check_picklable(owner, f"settings value {key}", value, _FIX_PICKLE)
+                require_picklable(owner, f"settings value {key}", value, _FIX_PICKLE)
     options = (episodes, steps, max_episode_steps, eval_episodes)
     calls = [(make_agent, make_env, index, setting, seed, options)
              for index, setting, seed in tasks]

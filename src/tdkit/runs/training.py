@@ -24,7 +24,7 @@ from .._progress import progress_bar
 from .._validation import require_positive_int
 from ..envs import adapt
 from .episode import run_episode
-from .fit import check_agent_fits
+from .fit import require_agent_fits
 from .history import History
 from .seeds import episode_seed, root_sequence
 from .vector import train_vector
@@ -147,9 +147,9 @@ def train(
             max_episode_steps=max_episode_steps, use_action_masks=use_action_masks,
         )
     env = adapt(env)
-    check_agent_fits(agent, env, owner="train")
+    require_agent_fits(agent, env, owner="train")
     if checkpoint is not None:
-        _check_checkpoint_folder(checkpoint)
+        _require_checkpoint_folder(checkpoint)
     root = root_sequence(seed, owner="train")
     callbacks = tuple(callbacks)
     history = History()
@@ -229,7 +229,7 @@ def _attach_history(exc: BaseException, history: History) -> None:
         )
 
 
-def _check_checkpoint_folder(path: Any) -> None:
+def _require_checkpoint_folder(path: Any) -> None:
     folder = Path(path).expanduser().resolve().parent
     if not folder.is_dir():
         raise InvalidParameterError(
@@ -313,7 +313,7 @@ def evaluate(
     if max_episode_steps is not None:
         max_episode_steps = require_positive_int("evaluate", "max_episode_steps", max_episode_steps)
     env = adapt(env)
-    check_agent_fits(agent, env, owner="evaluate")
+    require_agent_fits(agent, env, owner="evaluate")
     root = root_sequence(seed, owner="evaluate")
     returns = np.empty(episodes)
     warn_after = _ENDLESS_STEPS if max_episode_steps is None else None

@@ -31,7 +31,7 @@ from gymnasium.vector.utils import iterate
 
 from .._errors import InvalidParameterError
 from .episode import bad_reward, info_mask
-from .fit import check_agent_fits
+from .fit import require_agent_fits
 from .history import History
 from .seeds import episode_seed, root_sequence
 
@@ -147,7 +147,7 @@ def train_vector(
         observation_space=venv.single_observation_space, action_space=venv.single_action_space
     )
     for agent in agents:
-        check_agent_fits(agent, single, owner="train")
+        require_agent_fits(agent, single, owner="train")
     mode = venv.metadata.get("autoreset_mode")
     same_step = getattr(mode, "value", mode) == "SameStep"
     roots = agent_roots(seed, n)

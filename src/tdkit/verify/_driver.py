@@ -19,7 +19,6 @@ import numpy as np
 from ..runs import (
     AgentFault,
     EpisodeHooks,
-    check_update_result,
     describe_exception,
     episode_seed,
     root_sequence,
@@ -33,7 +32,6 @@ __all__ = [
     "Watcher",
     "agent_kind",
     "build_agent",
-    "check_errors",
     "read_q",
     "read_v",
     "run_episodes",
@@ -99,11 +97,6 @@ def build_agent(make_agent: Callable[[Any, int], Any], env: Any, seed: int) -> A
     if agent is None:
         raise AgentFault(f"make_agent(env, {seed}) returned None instead of an agent")
     return agent
-
-
-def check_errors(errors: Any, where: str) -> tuple[float, ...]:
-    """Return ``update()``'s result as a tuple of floats, or raise an AgentFault."""
-    return check_update_result(errors, where)
 
 
 def read_q(agent: Any, states: Sequence[int], where: str | None = None) -> np.ndarray:
@@ -225,10 +218,6 @@ def run_episodes(
         trace.returns.append(result.total_reward)
         watch.after_episode(episode, result.length)
     return trace
-
-
-def all_finite(values: np.ndarray) -> bool:
-    return bool(np.isfinite(values).all())
 
 
 def fmt(x: Any) -> str:

@@ -80,6 +80,7 @@ import numpy as np
 from .._errors import InvalidParameterError
 from ..dp import evaluate_policy, value_iteration
 from ..envs import problems
+from ..runs import require_update_result
 from ..stats import chi2_sf, student_t_sf
 from ._driver import (
     AgentFault,
@@ -87,7 +88,6 @@ from ._driver import (
     Watcher,
     agent_kind,
     build_agent,
-    check_errors,
     fmt,
     read_q,
     read_v,
@@ -377,7 +377,7 @@ def check_protocol(ctx: Context) -> CheckResult:
                 "terminated, truncated, *, next_mask=None) and update()",
                 seed=seed, env=probe.name,
             )
-        first = check_errors(agent.update(), "before any observe")
+        first = require_update_result(agent.update(), "before any observe")
         if first:
             return _result(
                 name, FAILED,

@@ -39,7 +39,7 @@ import numpy as np
 
 from .._validation import require_in_range, require_positive_int
 from ..runs._dispatch import dispatch
-from ..runs._one_run import check_callable, check_executor, check_seeds, seeded_run
+from ..runs._one_run import require_callable, require_executor, require_seeds, seeded_run
 from ..runs._results import SweepRunError
 from ..stats import ScoreSummary, WelchResult, summarize_scores, welch_test
 
@@ -159,8 +159,8 @@ def compare_performance(
     """
     owner = "compare_performance"
     for name, value in (("make_a", make_a), ("make_b", make_b), ("make_env", make_env)):
-        check_callable(owner, name, value)
-    seed_list = check_seeds(owner, seeds, minimum=2, distinct=False)
+        require_callable(owner, name, value)
+    seed_list = require_seeds(owner, seeds, minimum=2, distinct=False)
     episodes = require_positive_int(owner, "episodes", episodes)
     eval_episodes = require_positive_int(owner, "eval_episodes", eval_episodes)
     if max_episode_steps is not None:
@@ -169,7 +169,7 @@ def compare_performance(
                                 low_open=True, high_open=True)
     n_resamples = require_positive_int(owner, "n_resamples", n_resamples)
     if executor is not None:
-        check_executor(owner, executor, "submit")
+        require_executor(owner, executor, "submit")
     calls = [
         (make, make_env, seed, episodes, eval_episodes, max_episode_steps, stream)
         for stream, make in enumerate((make_a, make_b))

@@ -17,7 +17,14 @@ import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
-from tdkit._greedy import greedy_action
+from tdkit._greedy import (
+    ActionSets,
+    greedy_action,
+    greedy_index,
+    greedy_pick,
+    greedy_pick_rows,
+    greedy_rows,
+)
 from tdkit.exploration import EpsilonGreedy, Softmax
 from tdkit.learners import _targets as T
 
@@ -145,6 +152,39 @@ def test_greedy_index_uses_the_tie_rule_of_greedy_action(data, seed):
         u = np.random.default_rng(seed).random()
         want = greedy_action(rows[i], m, np.random.default_rng(seed))
         assert T.greedy_index(rows[i].tolist(), allowed_of(mask, i, rows.shape[1]), u) == want
+
+
+@given(rows_and_masks(), st.floats(0, 1, exclude_max=True))
+def test_the_tie_rule_is_defined_once_and_the_per_step_form_adapts_it(data, u):
+    # The targets' argmax (scalar learners, numpy batch, compiled kernels) is the kernel's
+    # greedy_pick; the per-step greedy_index (a tuple row, an ActionSet, a draw callable)
+    # must choose what greedy_pick chooses from the number it draws, and draw only on ties.
+    assert T.greedy_index is greedy_pick and T.greedy_index_rows is greedy_pick_rows
+    rows, mask, _ = data
+    drawn: list[float] = []
+
+    def draw() -> float:
+        drawn.append(u)
+        return u
+
+    for i in range(rows.shape[0]):
+        values = rows[i].tolist()
+        indices = allowed_of(mask, i, rows.shape[1])
+        allowed = None if mask is None else ActionSets(rows.shape[1]).get(mask[i])
+        before = len(drawn)
+        assert greedy_index(tuple(values), allowed, draw) == T.greedy_index(values, indices, u)
+        top = max(values[a] for a in indices)
+        assert len(drawn) - before == (sum(values[a] == top for a in indices) > 1)
+
+
+def test_the_per_step_greedy_refuses_nan_that_greedy_pick_reports():
+    nan = float("nan")
+    with pytest.raises(FloatingPointError, match="NaN"):
+        greedy_index((nan, 1.0), None, lambda: 0.0)  # a NaN maximum
+    with pytest.raises(FloatingPointError, match="NaN"):
+        greedy_index((1.0, nan, 1.0), None, lambda: 0.0)  # ties, and a NaN among them
+    with pytest.raises(FloatingPointError, match="learner 1"):
+        greedy_rows(np.array([[0.0, 1.0], [nan, 1.0]]), np.array([0.5, 0.5]))
 
 
 def test_nan_makes_choices_undefined_and_is_reported_as_minus_one():

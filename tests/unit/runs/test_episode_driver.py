@@ -259,3 +259,13 @@ def test_the_history_records_each_episodes_measured_wall_clock_time():
     assert hist.seconds.shape == (3,)
     assert np.all(hist.seconds > 0) and np.all(np.isfinite(hist.seconds))
     assert [r["seconds"] for r in hist.to_records()] == hist.seconds.tolist()
+
+
+def test_update_results_are_validated_and_the_old_name_warns():
+    from tdkit.runs import AgentFault, check_update_result, require_update_result
+
+    assert require_update_result([1, np.float32(0.5)]) == (1.0, 0.5)
+    with pytest.raises(AgentFault, match="non-float"):
+        require_update_result((0.1, "x"))
+    with pytest.warns(FutureWarning, match=r"0\.3\.0.*require_update_result"):
+        assert check_update_result(np.array([2.0])) == (2.0,)

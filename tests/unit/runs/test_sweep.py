@@ -329,7 +329,7 @@ def test_records_and_frames(evaluated):
         frame.groupby("step_size")["score"].mean().to_numpy(),
         [row.mean.estimate for row in evaluated.summary()],
     )
-    episodes = evaluated.to_frame(per_episode=True)
+    episodes = evaluated.to_episode_frame()
     assert len(episodes) == sum(len(run.history) for run in evaluated)
     assert list(episodes.columns) == [
         "setting_index", "step_size", "seed", "episode", "return", "length",
@@ -338,6 +338,19 @@ def test_records_and_frames(evaluated):
     np.testing.assert_array_equal(first["return"].to_numpy(), evaluated.runs_for(1)[2].returns)
     table = evaluated.summary().to_frame()
     assert list(table["runs"]) == [4, 4] and "iqm_low" in table.columns
+
+
+def test_the_per_episode_flag_warns_and_names_the_method_with_its_own_layout(evaluated):
+    # A flag must not change the row layout: per-episode rows have their own methods, and
+    # the old flag still gives them, with a FutureWarning naming the new method.
+    with pytest.warns(FutureWarning, match=r"0\.3\.0.*to_episode_records"):
+        assert evaluated.to_records(per_episode=True) == evaluated.to_episode_records()
+    with pytest.warns(FutureWarning, match=r"to_episode_records"):
+        assert evaluated.to_records(per_episode=False) == evaluated.to_records()
+    pytest.importorskip("pandas")
+    with pytest.warns(FutureWarning, match=r"to_episode_frame"):
+        old = evaluated.to_frame(per_episode=True)
+    assert old.equals(evaluated.to_episode_frame())
 
 
 def test_progress_bar_runs():

@@ -23,9 +23,10 @@ from typing import Any
 import numba
 import numpy as np
 
+from ... import _greedy
 from ...envs import _successors
 from ...learners import _targets
-from ._result import BatchResult, split_episodes
+from ._result import BatchResult, batch_result
 from ._setup import LEARNERS, Setup, schedule_values, step_size_kind, uniform_blocks
 
 __all__ = ["run_compiled"]
@@ -34,13 +35,15 @@ _CACHE = True
 """Keep compiled code in numba's on-disk cache (``__pycache__``).
 
 numba keys a cached function by its own source file and bytecode only. The
-kernel inlines the functions of ``_targets.py`` and ``_successors.py``, so it
-is built in a closure over :data:`_STAMP`, a hash of those sources: numba puts
-closure contents into the cache key, so editing them compiles afresh.
+kernel inlines the functions of ``_targets.py`` (with the tie rule it takes
+from ``_greedy.py``) and ``_successors.py``, so it is built in a closure over
+:data:`_STAMP`, a hash of those sources: numba puts closure contents into the
+cache key, so editing them compiles afresh.
 """
 
 _STAMP = int(hashlib.sha256(b"".join(
-    Path(m.__file__).read_bytes() for m in (_targets, _successors)  # type: ignore[arg-type]
+    Path(m.__file__).read_bytes()  # type: ignore[arg-type]
+    for m in (_greedy, _targets, _successors)
 )).hexdigest()[:15], 16)
 
 
@@ -264,13 +267,4 @@ def run_compiled(
             ids.append(end_ids[:n_ended].copy())
             returns.append(end_returns[:n_ended].copy())
             lengths.append(end_lengths[:n_ended].copy())
-    return BatchResult(
-        learner=learner,
-        tables=(q[0] + q[1]) / 2.0 if double else q[0],
-        visits=total_visits,
-        episode_returns=split_episodes(ids, returns, K, np.float64),
-        episode_lengths=split_episodes(ids, lengths, K, np.int64),
-        steps=steps,
-        double_tables=q if double else None,
-        backend="compiled",
-    )
+    return batch_result(learner, q, total_visits, (ids, returns, lengths), steps, "compiled")

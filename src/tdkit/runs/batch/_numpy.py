@@ -7,7 +7,7 @@ import numpy as np
 from ...envs._successors import sample_slots
 from ...learners import _targets
 from ...schedules import Schedule
-from ._result import BatchResult, split_episodes
+from ._result import BatchResult, batch_result
 from ._setup import Setup, schedule_values, step_size_kind, uniform_blocks
 
 __all__ = ["run_numpy"]
@@ -188,14 +188,6 @@ def run_numpy(setup: Setup, q: np.ndarray, rng: np.random.Generator, steps: int)
             state = s2
         _raise_on_nan(q)
 
-    return BatchResult(
-        learner=learner,
-        tables=(q[0] + q[1]) / 2.0 if double else q[0],
-        visits=total_visits,
-        episode_returns=split_episodes(ended_ids, ended_returns, K, np.float64),
-        episode_lengths=split_episodes(ended_ids, ended_lengths, K, np.int64),
-        steps=steps,
-        double_tables=q if double else None,
-        backend="numpy",
-    )
+    records = (ended_ids, ended_returns, ended_lengths)
+    return batch_result(learner, q, total_visits, records, steps, "numpy")
 

@@ -8,7 +8,7 @@ import numpy as np
 
 from ...dp import greedy_policy
 
-__all__ = ["BatchResult", "split_episodes"]
+__all__ = ["BatchResult", "batch_result", "split_episodes"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -80,6 +80,35 @@ class BatchResult:
             f"BatchResult(learner={self.learner!r}, n_learners={k}, n_states={s}, "
             f"n_actions={a}, steps={self.steps}, episodes={episodes})"
         )
+
+
+def batch_result(
+    learner: str,
+    q: np.ndarray,
+    visits: np.ndarray,
+    ended: tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]],
+    steps: int,
+    backend: str,
+) -> BatchResult:
+    """The :class:`BatchResult` of a finished run of either path (numpy or compiled).
+
+    ``q`` (T, K, S, A) holds the final tables (T = 2 for ``"double_q"``);
+    ``ended`` holds the batches of ended-episode records ``(ids, returns,
+    lengths)`` in the order they ended (see :func:`split_episodes`).
+    """
+    double = learner == "double_q"
+    ids, returns, lengths = ended
+    n_learners = q.shape[1]
+    return BatchResult(
+        learner=learner,
+        tables=(q[0] + q[1]) / 2.0 if double else q[0],
+        visits=visits,
+        episode_returns=split_episodes(ids, returns, n_learners, np.float64),
+        episode_lengths=split_episodes(ids, lengths, n_learners, np.int64),
+        steps=steps,
+        double_tables=q if double else None,
+        backend=backend,
+    )
 
 
 def split_episodes(
