@@ -26,6 +26,12 @@ Masks: tdkit with Taxi's int8 ``action_mask`` passed as ``mask=`` to act and
 ``next_mask=`` to observe, against tdkit without masks; the difference per
 step is the cost of masks.
 
+Split: where the difference lies. A tdkit and a pure-Python agent first
+replay the data once untimed (so both hold the same learned table and their
+generators are in the same state); then ``act`` alone is timed over the data,
+and ``observe`` + ``update`` alone over the data again. Both agents still do
+identical work (the same draws, the same updates).
+
 Each round runs every agent once, in a shuffled order, so machine noise hits
 all of them alike (a first warm-up round is discarded). Times are CPU time of
 this process (``time.process_time``), so other programs on a shared machine
@@ -162,6 +168,33 @@ def replay_masked(agent: Any, data: Replay) -> float:
     return (time.process_time() - start) / len(data)
 
 
+def replay_act(agent: Any, data: Replay) -> float:
+    """Seconds per transition of ``act`` alone (the agent is not taught)."""
+    act = agent.act
+    start = time.process_time()
+    for s, _a, _r, _s2, _terminated, _truncated, _m, _m2 in data:
+        act(s)
+    return (time.process_time() - start) / len(data)
+
+
+def replay_learn(agent: Any, data: Replay) -> float:
+    """Seconds per transition of ``observe`` + ``update`` alone."""
+    observe, update = agent.observe, agent.update
+    start = time.process_time()
+    for s, a, r, s2, terminated, truncated, _m, _m2 in data:
+        observe(s, a, r, s2, terminated, truncated)
+        update()
+    return (time.process_time() - start) / len(data)
+
+
+def split_pair(seed: int, data: Replay) -> tuple[tdkit.QLearning, PurePythonQ]:
+    """A tdkit and a pure-Python agent after one untimed replay: same table, same generator."""
+    pair = (tdkit_agent(seed), PurePythonQ(500, 6, np.random.default_rng(seed).random))
+    for agent in pair:
+        replay(agent, data)
+    return pair
+
+
 def main(argv: list[str] | None = None) -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--steps", type=int, default=20_000)
@@ -173,24 +206,32 @@ def main(argv: list[str] | None = None) -> None:
     data = record(args.steps, seed=0)
 
     names = ["tdkit", "pure Python", "textbook numpy", "pure Python, stdlib random",
-             "tdkit, masks"]
+             "tdkit, masks", "tdkit act", "pure Python act", "tdkit observe+update",
+             "pure Python observe+update"]
     times: dict[str, list[float]] = {name: [] for name in names}
     order = np.random.default_rng(0)
     for k in range(args.rounds + 1):  # round 0 warms up and is discarded
         tdkit_run = tdkit_agent(k)
         python_run = PurePythonQ(500, 6, np.random.default_rng(k).random)
+        split_tdkit, split_python = split_pair(k, data)
         agents: dict[str, tuple[Any, Callable[[Any, Replay], float]]] = {
             "tdkit": (tdkit_run, replay),
             "pure Python": (python_run, replay),
             "textbook numpy": (NumpyQ(500, 6, k), replay),
             "pure Python, stdlib random": (PurePythonQ(500, 6, random.Random(k).random), replay),
             "tdkit, masks": (tdkit_agent(k), replay_masked),
+            "tdkit act": (split_tdkit, replay_act),
+            "pure Python act": (split_python, replay_act),
+            "tdkit observe+update": (split_tdkit, replay_learn),
+            "pure Python observe+update": (split_python, replay_learn),
         }
         measured = {}
-        for i in order.permutation(len(names)):
+        # The split agents run act before observe+update (the learned table must not
+        # change before act is timed); the rest run in a shuffled order.
+        for i in sorted(order.permutation(len(names)), key=lambda i: "update" in names[i]):
             agent, run = agents[names[i]]
             measured[names[i]] = run(agent, data)
-        if tdkit_run.table.tolist() != python_run.q:
+        if tdkit_run.table.tolist() != python_run.q or split_tdkit.table.tolist() != split_python.q:
             raise SystemExit("tdkit and the pure-Python agent disagree: not the same work.")
         if k > 0:
             for name in names:
@@ -203,7 +244,7 @@ def main(argv: list[str] | None = None) -> None:
     print(f"Q-learning act + observe + update on {len(data)} replayed Taxi transitions, "
           f"{args.rounds} round(s); CPU microseconds per step, best and median of rounds")
     for name in names:
-        print(f"  {name:<28} best {best[name] * 1e6:6.2f}   median "
+        print(f"  {name:<30} best {best[name] * 1e6:6.2f}   median "
               f"{statistics.median(times[name]) * 1e6:6.2f}")
     print("  (tdkit and pure Python draw the same random numbers and end with the same table)")
     print(f"  tdkit / pure Python        {best['tdkit'] / best['pure Python']:5.2f}x, bests "
@@ -213,6 +254,10 @@ def main(argv: list[str] | None = None) -> None:
     print(f"  masks, per step            {(best['tdkit, masks'] - best['tdkit']) * 1e6:5.2f} us "
           f"between the bests (per-round median {statistics.median(mask_cost) * 1e6:.2f})   "
           "target <= 1 us")
+    for part in ("act", "observe+update"):
+        print(f"  split, {part:<15}    tdkit / pure Python "
+              f"{best[f'tdkit {part}'] / best[f'pure Python {part}']:5.2f}x, bests "
+              f"({(best[f'tdkit {part}'] - best[f'pure Python {part}']) * 1e6:.2f} us more)")
 
 
 if __name__ == "__main__":

@@ -48,7 +48,7 @@ from typing import Any, ClassVar, NamedTuple, Protocol, runtime_checkable
 import numpy as np
 
 from ._errors import InvalidParameterError
-from ._greedy import ActionSets, greedy_index
+from ._greedy import ActionSet, ActionSets, greedy_index
 from ._seeding import SeedLike, as_generator
 from ._validation import require_in_range, require_known_keywords, require_positive_int
 from .exploration import EpsilonGreedy, Exploration, as_exploration
@@ -84,6 +84,10 @@ class Transition(NamedTuple):
 
     ``next_mask`` is None or the read-only boolean array of the
     :class:`~tdkit._greedy.ActionSet` of the mask given to ``observe``.
+
+    ``observe`` queues plain tuples in this field order (building the named
+    tuple would cost a call per step), so ``_learn`` implementations unpack
+    their argument by position, never by field name.
     """
 
     state: int
@@ -95,7 +99,8 @@ class Transition(NamedTuple):
     next_mask: np.ndarray | None = None
 
 
-_new_tuple = tuple.__new__  # builds a Transition without the Python-level __new__
+_HIGHEST = sys.float_info.max
+_LOWEST = -_HIGHEST
 
 _VARIADIC = (inspect.Parameter.VAR_POSITIONAL, inspect.Parameter.VAR_KEYWORD)
 _PARAMETERS: dict[type, tuple[inspect.Parameter, ...]] = {}
@@ -179,7 +184,10 @@ class TabularAgent:
     Subclasses implement :meth:`_learn`, which applies the update for one
     encoded transition and returns the TD errors as a tuple. The shared TD
     step :math:`Q(s,a) \leftarrow Q(s,a) + \alpha\,[G - Q(s,a)]` lives in
-    :meth:`_td_step` and is written nowhere else.
+    :meth:`_td_step` (any table pair) and its form for the learner's own
+    tables, :meth:`_td_main`, which learners with a Python-float target call
+    directly; it is written nowhere else. ``_learn`` receives a plain tuple in
+    :class:`Transition` field order and unpacks it by position.
 
     Parameters
     ----------
@@ -233,6 +241,8 @@ class TabularAgent:
         "_all_actions",
         "_draw",
         "_eps_rule",
+        "_own_choose",
+        "_own_td_step",
         "_qbytes",
         "_qv",
         "_row_bytes",
@@ -285,7 +295,7 @@ class TabularAgent:
         self._rng = as_generator(seed, owner=name)
         self._check_encoders()
         self._init_tables(initial_value)
-        self._pending: list[Transition] = []
+        self._pending: list[tuple[Any, ...]] = []  # Transition fields, by position
         self.steps_ = 0
         self.episodes_ = 0
         self._steps_at_episode_end = 0
@@ -307,6 +317,10 @@ class TabularAgent:
         self._all_actions = range(self.n_actions)
         explore = self._explore
         self._eps_rule = explore if type(explore) is EpsilonGreedy else None
+        # act goes straight to _pick unless a subclass overrides _choose.
+        self._own_choose = type(self)._choose is TabularAgent._choose
+        # Learners call _td_main directly only when no subclass overrides _td_step.
+        self._own_td_step = type(self)._td_step is TabularAgent._td_step
         # Without encoders, a Python int in range is its own index: the per-step
         # methods test ``type(x) is int and 0 <= x < _states_plain`` before calling
         # the encoder (-1 when there is an encoder, so the test always fails).
@@ -473,6 +487,9 @@ class TabularAgent:
             False gives the greedy action (ties broken uniformly at random).
         """
         s = obs if type(obs) is int and 0 <= obs < self._states_plain else self._encode(obs)
+        if self._own_choose:
+            a = self._pick(s, None if mask is None else self._sets.get(mask), explore)
+            return a if self._actions_plain > 0 else self._env_action(a)
         if mask is not None:
             mask = self._sets.get(mask).mask
         return self._env_action(self._choose(s, mask, explore))
@@ -492,25 +509,32 @@ class TabularAgent:
     def _choose(self, s: int, mask: np.ndarray | None, explore: bool) -> int:
         """The behaviour (``explore``) or greedy action in ``s``; ``mask`` as transitions carry it.
 
+        Subclasses may override it; :meth:`act` then calls it instead of :meth:`_pick`.
+        """
+        return self._pick(s, None if mask is None else self._sets.of(mask), explore)
+
+    def _pick(self, s: int, allowed: ActionSet | None, explore: bool) -> int:
+        """:meth:`_choose` for an :class:`~tdkit._greedy.ActionSet` (None: every action).
+
         ε-greedy (:class:`~tdkit.exploration.EpsilonGreedy` itself) runs in
         pure Python; other rules get the numpy row. Both draw the same numbers.
+        The action is a Python int.
         """
-        rule = self._eps_rule
-        if explore and rule is None:
-            return self._explore.select(
-                self._q[s], mask, self._rng, step=self.steps_, counts=self._counts_for(s)
-            )
-        allowed = None if mask is None else self._sets.of(mask)
-        draw = self._draw
         if explore:
-            eps = rule._fixed  # type: ignore[union-attr]
+            rule = self._eps_rule
+            if rule is None:
+                return int(self._explore.select(
+                    self._q[s], None if allowed is None else allowed.mask, self._rng,
+                    step=self.steps_, counts=self._counts_for(s),
+                ))
+            eps = rule._fixed
             if eps is None:
-                eps = rule.current(self.steps_)  # type: ignore[union-attr]
-            if eps > 0.0 and draw() < eps:
+                eps = rule.current(self.steps_)
+            if eps > 0.0 and self._draw() < eps:
                 if allowed is None:
-                    return int(draw() * self.n_actions)
+                    return int(self._draw() * self._width)
                 indices = allowed.indices
-                return indices[int(draw() * len(indices))]
+                return indices[int(self._draw() * len(indices))]
         row = self._unpack_row(self._qbytes, s * self._row_bytes)
         # A single maximum needs no draw; ties and NaN go to greedy_index.
         if allowed is None:
@@ -522,7 +546,7 @@ class TabularAgent:
             top = max(values)
             if values.count(top) == 1 and top == top:
                 return allowed.indices[values.index(top)]
-        return greedy_index(row, allowed, draw)
+        return greedy_index(row, allowed, self._draw)
 
     def _counts_for(self, s: int) -> np.ndarray | None:
         """The visit counts of ``s`` when the exploration rule reads them, else None."""
@@ -567,9 +591,7 @@ class TabularAgent:
             else self._action_index(action)
         )
         pending = self._pending
-        pending.append(
-            _new_tuple(Transition, (s, a, r, s2, terminated, truncated, next_mask))
-        )
+        pending.append((s, a, r, s2, terminated, truncated, next_mask))
         self.steps_ += 1
         if len(pending) >= self._pile_up_limit:
             self._warn_pile_up(len(pending))
@@ -591,14 +613,14 @@ class TabularAgent:
     def update(self) -> tuple[float, ...]:
         """Apply the pending updates; return their TD errors (``()`` if none)."""
         pending = self._pending
-        if not pending:
-            return ()
         if len(pending) == 1:
             transition = pending.pop()
             errors = self._learn(transition)
             if transition[4] or transition[5]:
                 self._close_episode(self.steps_)
             return errors
+        if not pending:
+            return ()
         out: list[float] = []
         batch = pending[:]
         pending.clear()
@@ -642,8 +664,8 @@ class TabularAgent:
         pending = self._pending
         if pending:
             last = pending[-1]
-            if not (last.terminated or last.truncated):
-                pending[-1] = last._replace(truncated=True)
+            if not (last[4] or last[5]):
+                pending[-1] = (*last[:5], True, *last[6:])
             return self.update()
         if self.steps_ == self._steps_at_episode_end:
             return ()
@@ -692,24 +714,7 @@ class TabularAgent:
         table and the counts as they were.
         """
         if values is self._q and visits is self._visits:
-            k = s * self._width + a
-            vv = self._vv
-            n = vv[k] + 1
-            vv[k] = n
-            alpha = self._alpha_const
-            if alpha is None:
-                alpha = self._step_size.value(self.steps_, n)
-            qv = self._qv
-            old = qv[k]
-            delta = target - old
-            if weight != 1.0:
-                delta = weight * delta
-            new = old + alpha * delta
-            if not math.isfinite(new):
-                vv[k] = n - 1
-                self._refuse_overflow(s, a, target, new)
-            qv[k] = new
-            return float(delta)
+            return float(self._td_main(s, a, target, weight))
         alpha = self._count_visit(visits, s, a)
         q = values[s, a]
         delta = target - q
@@ -721,6 +726,33 @@ class TabularAgent:
             self._refuse_overflow(s, a, target, new)
         values[s, a] = new
         return float(delta)
+
+    def _td_main(self, s: int, a: int, target: float, weight: float = 1.0) -> float:
+        """:meth:`_td_step` on ``_q`` and ``_visits``, through their flat views.
+
+        The error is returned as computed: a Python float when ``target`` and
+        ``weight`` are (:meth:`_td_step` converts them), so learners whose
+        target is a Python float call this directly when ``_own_td_step`` (no
+        subclass overrides :meth:`_td_step`). The
+        table and the count are written only after the new value is known to
+        be finite.
+        """
+        k = s * self._width + a
+        n = self._vv[k] + 1
+        alpha = self._alpha_const
+        if alpha is None:
+            alpha = float(self._step_size.value(self.steps_, n))
+        qv = self._qv
+        old = qv[k]
+        delta = target - old
+        if weight != 1.0:
+            delta = weight * delta
+        new = old + alpha * delta
+        if not _LOWEST <= new <= _HIGHEST:  # inf or NaN (no numpy warning for numpy floats)
+            self._refuse_overflow(s, a, target, new)
+        qv[k] = new
+        self._vv[k] = n
+        return delta
 
     def _refuse_overflow(self, s: int, a: int, target: float, new: float) -> None:
         """Raise for an update whose new value is not finite (the caller changed nothing)."""

@@ -88,6 +88,8 @@ class QLearning(TabularAgent):
                 target = r + self.gamma * max(row)
             else:
                 target = r + self.gamma * row_max(row, self._sets.of(next_mask))
+        if self._own_td_step:  # r, gamma and the row are Python floats
+            return (self._td_main(s, a, target),)
         return (self._td_step(self._q, self._visits, s, a, target),)
 
     #: Q-learning's update under a name subclasses keep when they override ``_learn``
@@ -144,6 +146,8 @@ class Sarsa(CommitsNextAction, TabularAgent):
         else:
             a2 = self._next_action(s2, next_mask, truncated)
             target = r + self.gamma * self._qv[s2 * self._width + a2]
+        if self._own_td_step:  # r, gamma and the entry are Python floats
+            return (self._td_main(s, a, target),)
         return (self._td_step(self._q, self._visits, s, a, target),)
 
 
