@@ -390,7 +390,8 @@ class DifferentialTD(_AverageReward, _PolicyLearner):
         self._init_average(reward_step_size, initial_average_reward)
 
     def _learn(self, transition: Transition) -> tuple[float, ...]:
-        return super()._learn(transition._replace(action=0))  # V(s) is column 0
+        s, _a, *rest = transition
+        return super()._learn((s, 0, *rest))  # V(s) is column 0 of the table
 
     def _restart_value(self, s0: int, a0: int) -> float:
         return self._next_value(s0, None, False, False)
