@@ -41,7 +41,7 @@ from ._errors import InvalidParameterError
 __all__ = [
     "ActionSet",
     "ActionSets",
-    "check_mask",
+    "require_mask",
     "greedy_action",
     "greedy_index",
     "greedy_pick",
@@ -56,7 +56,7 @@ __all__ = [
 _NEG_INF = float("-inf")
 
 
-def check_mask(mask: object, n_actions: int, *, name: str = "mask") -> np.ndarray:
+def require_mask(mask: object, n_actions: int, *, name: str = "mask") -> np.ndarray:
     """Return ``mask`` as a boolean array of shape ``(n_actions,)`` or raise.
 
     Boolean arrays of the right shape (the common case on the hot path) cost
@@ -288,21 +288,21 @@ class ActionSets:
         ------
         InvalidParameterError
             If ``mask`` has the wrong shape, values other than 0/1, or allows
-            no action (see :func:`check_mask`).
+            no action (see :func:`require_mask`).
         """
         if type(mask) is np.ndarray and mask.ndim == 1:
             key = mask.tobytes()
             hit = self._by_bytes.get(key)
             if hit is not None and hit[0] is mask.dtype:
                 return hit[1]
-            entry = _make_action_set(check_mask(mask, self.n_actions, name=name))
+            entry = _make_action_set(require_mask(mask, self.n_actions, name=name))
             if len(self._by_bytes) >= self.limit:
                 self._by_bytes.clear()
                 self._by_id.clear()
             self._by_bytes[key] = (mask.dtype, entry)
             self._by_id[id(entry.mask)] = entry
             return entry
-        return _make_action_set(check_mask(mask, self.n_actions, name=name))
+        return _make_action_set(require_mask(mask, self.n_actions, name=name))
 
     def of(self, mask: np.ndarray | None) -> ActionSet | None:
         """The set of a boolean ``mask`` (None for None); cached arrays are found by identity."""

@@ -8,18 +8,22 @@ solver, the value seen and the fix.
 
 from __future__ import annotations
 
+import numbers
 from typing import Any
 
 import numpy as np
 
 from ._errors import InvalidParameterError
-from ._validation import require_float_array, require_probability_rows
+from ._validation import require_float_array, require_in_range, require_probability_rows
 from .envs.finite import FiniteMDP
 
-__all__ = ["_require_allowed", "_require_mdp", "_require_values", "_policy_probabilities"]
+__all__ = [
+    "policy_probabilities", "require_allowed", "require_exploration", "require_mdp",
+    "require_values",
+]
 
 
-def _require_mdp(owner: str, mdp: Any) -> FiniteMDP:
+def require_mdp(owner: str, mdp: Any) -> FiniteMDP:
     if not isinstance(mdp, FiniteMDP):
         raise InvalidParameterError(
             f"{owner}: mdp must be a tdkit.FiniteMDP; got {type(mdp).__name__}. "
@@ -28,7 +32,7 @@ def _require_mdp(owner: str, mdp: Any) -> FiniteMDP:
     return mdp
 
 
-def _require_values(owner: str, name: str, values: Any, shape: tuple[int, ...]) -> np.ndarray:
+def require_values(owner: str, name: str, values: Any, shape: tuple[int, ...]) -> np.ndarray:
     array = require_float_array(owner, name, values)
     if array.shape != shape:
         raise InvalidParameterError(
@@ -39,7 +43,7 @@ def _require_values(owner: str, name: str, values: Any, shape: tuple[int, ...]) 
     return array
 
 
-def _policy_probabilities(owner: str, mdp: FiniteMDP, policy: Any) -> np.ndarray:
+def policy_probabilities(owner: str, mdp: FiniteMDP, policy: Any) -> np.ndarray:
     """Return ``policy`` as an (S, A) probability array, validated."""
     n, m = mdp.n_states, mdp.n_actions
     array = np.asarray(policy)
@@ -59,17 +63,17 @@ def _policy_probabilities(owner: str, mdp: FiniteMDP, policy: Any) -> np.ndarray
             )
         probs = np.zeros((n, m))
         probs[np.arange(n), array] = 1.0
-        return _require_allowed(owner, mdp, probs)
+        return require_allowed(owner, mdp, probs)
     if array.shape == (n, m):
-        probs = _require_values(owner, "policy", array, (n, m))
-        return _require_allowed(owner, mdp, require_probability_rows(owner, "policy", probs))
+        probs = require_values(owner, "policy", array, (n, m))
+        return require_allowed(owner, mdp, require_probability_rows(owner, "policy", probs))
     raise InvalidParameterError(
         f"{owner}: policy must have shape (S,) = ({n},) (action indices) or (S, A) = "
         f"({n}, {m}) (probabilities); got shape {array.shape}."
     )
 
 
-def _require_allowed(owner: str, mdp: FiniteMDP, probs: np.ndarray) -> np.ndarray:
+def require_allowed(owner: str, mdp: FiniteMDP, probs: np.ndarray) -> np.ndarray:
     """Refuse a policy that gives a masked action positive probability."""
     masks = mdp.masks
     if masks is not None:
@@ -83,3 +87,12 @@ def _require_allowed(owner: str, mdp: FiniteMDP, probs: np.ndarray) -> np.ndarra
                 "tdkit.agent_policy(agent, mdp) for a learner's greedy policy."
             )
     return probs
+
+
+def require_exploration(owner: str, exploration: Any) -> float:
+    if isinstance(exploration, bool) or not isinstance(exploration, numbers.Real):
+        raise InvalidParameterError(
+            f"{owner}: exploration must be a float in [0, 1] (the ε of ε-greedy); got "
+            f"{exploration!r}."
+        )
+    return require_in_range(owner, "exploration", float(exploration), 0.0, 1.0)

@@ -2,9 +2,10 @@
 
 from __future__ import annotations
 
+from contextlib import AbstractContextManager, nullcontext
 from typing import Any
 
-__all__ = ["progress_bar"]
+__all__ = ["progress_bar", "sweep_progress"]
 
 
 def progress_bar(
@@ -25,3 +26,10 @@ def progress_bar(
         raise ImportError(f"{owner}(progress=True) needs tqdm: pip install 'tdkit[progress]'"
                           ) from exc
     return tqdm(total=total, unit=unit, desc=desc)
+
+
+def sweep_progress(owner: str, enabled: bool, total: int) -> AbstractContextManager[Any]:
+    """``with sweep_progress(...) as bar``: a bar counting a solver's sweeps
+    (:func:`progress_bar`), closed on exit, or None when not ``enabled``."""
+    bar = progress_bar(owner, total, enabled, unit="sweep", desc=owner)
+    return nullcontext() if bar is None else bar

@@ -293,7 +293,7 @@ class TabularAgent:
         )
         self._explore = as_exploration(exploration, owner=name)
         self._rng = as_generator(seed, owner=name)
-        self._check_encoders()
+        self._require_encoders()
         self._init_tables(initial_value)
         self._pending: list[tuple[Any, ...]] = []  # Transition fields, by position
         self.steps_ = 0
@@ -343,7 +343,7 @@ class TabularAgent:
         self._q = table.values
         self._visits = table.visits
 
-    def _check_encoders(self) -> None:
+    def _require_encoders(self) -> None:
         name = type(self).__name__
         enc = self.state_encoder
         if enc is None:

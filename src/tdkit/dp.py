@@ -29,15 +29,23 @@ import math
 import numbers
 import warnings
 from collections.abc import Callable
-from contextlib import AbstractContextManager, nullcontext
-from dataclasses import dataclass
-from typing import Any, NamedTuple
+from typing import Any
 
 import numpy as np
 
+from ._bellman import (
+    GreedyPolicy,
+    Solution,
+    allowed_counts,
+    finish_solution,
+    greedy_policy,
+    look_ahead,
+    model_action_values,
+    policy_backup,
+)
 from ._errors import InvalidParameterError, TdkitError
-from ._model_args import _policy_probabilities, _require_mdp, _require_values
-from ._progress import progress_bar
+from ._model_args import policy_probabilities, require_exploration, require_mdp, require_values
+from ._progress import sweep_progress
 from ._validation import require_in_range, require_positive_int
 from .envs.finite import FiniteMDP
 
@@ -85,118 +93,8 @@ class ConvergenceError(TdkitError, RuntimeError):
 ConvergenceError.__module__ = "tdkit"
 
 
-@dataclass(frozen=True)
-class Solution:
-    r"""Result of :func:`value_iteration` or :func:`policy_iteration`.
-
-    Attributes
-    ----------
-    q : ndarray, shape (S, A)
-        Action values, ``action_values(mdp, v)``.
-    v : ndarray, shape (S,)
-        State values.
-    policy : ndarray of int, shape (S,)
-        A greedy policy of ``q`` (lowest action index among ties; use
-        :func:`greedy_policy` to see every tie).
-    iterations : int
-        Sweeps of value iteration, or improvement steps of policy iteration.
-    residual : float
-        Residual of ``v`` under ``operator``: ``max |T v - v|``.
-    operator : str
-        The Bellman operator whose fixed point this is: ``"optimality"``
-        (:math:`v^*`, :math:`q^*`) or ``"epsilon-greedy(0.1)"`` (the values of
-        the ε-greedy policy of its own ``q``, see :func:`value_iteration`).
-    exploration : float
-        The ε of that operator (0 for ``"optimality"``).
-    method : str
-        The algorithm that produced it (``"value_iteration"``,
-        ``"policy_iteration"``, ``"modified_policy_iteration"``,
-        ``"gauss_seidel"``).
-    error_bound : float
-        A bound on :math:`\|v - v_{\text{fixed}}\|_\infty`, the sup-norm
-        distance of ``v`` to the operator's exact fixed point (``inf`` when no
-        bound is known, e.g. value iteration with ``gamma = 1``; rounding not
-        included). ``q`` is then within ``gamma * error_bound`` of the exact
-        action values.
-
-    Action values of masked actions (see :attr:`FiniteMDP.masks`) are
-    ``-inf``.
-    """
-
-    q: np.ndarray
-    v: np.ndarray
-    policy: np.ndarray
-    iterations: int
-    residual: float
-    operator: str = "optimality"
-    exploration: float = 0.0
-    method: str = "value_iteration"
-    error_bound: float = math.inf
-
-
-class GreedyPolicy(NamedTuple):
-    """A greedy policy with its ties reported (see :func:`greedy_policy`)."""
-
-    policy: np.ndarray
-    """(S,) int: the lowest-index maximising action of each state."""
-    maximisers: np.ndarray
-    """(S, A) bool: every action within ``atol`` of the state's maximum."""
-
-    @property
-    def ties(self) -> np.ndarray:
-        """(S,) bool: states with more than one maximising action."""
-        return self.maximisers.sum(axis=1) > 1
-
-    def stochastic(self) -> np.ndarray:
-        """(S, A) probabilities spreading each state uniformly over its maximisers."""
-        weights = self.maximisers.astype(np.float64)
-        return weights / weights.sum(axis=1, keepdims=True)
-
-
 # ---------------------------------------------------------------- validation
 # ---------------------------------------------------------------- Bellman operators
-def _action_values(mdp: FiniteMDP, v: np.ndarray) -> np.ndarray:
-    # Terminal rows of the model are zero-reward self-loops, so once v is 0 on
-    # terminal states their rows of q are exactly 0 as well.
-    terminal = mdp.terminal
-    if terminal.any():
-        v = np.where(terminal, 0.0, v)
-    return mdp.R + mdp.gamma * mdp.expected_next(v)
-
-
-def _look_ahead(mdp: FiniteMDP, v: np.ndarray) -> np.ndarray:
-    """:func:`_action_values` with masked actions set to ``-inf``."""
-    q = _action_values(mdp, v)
-    if mdp.masks is not None:
-        q[~mdp.masks] = _NEG_INF
-    return q
-
-
-def _allowed_counts(mdp: FiniteMDP) -> np.ndarray | float:
-    """Number of allowed actions per state (a scalar when nothing is masked)."""
-    masks = mdp.masks
-    return float(mdp.n_actions) if masks is None else masks.sum(axis=1).astype(np.float64)
-
-
-def _backup(
-    q: np.ndarray, masks: np.ndarray | None, epsilon: float, counts: np.ndarray | float
-) -> np.ndarray:
-    r"""State values of the ε-greedy policy of ``q``: :math:`(1-ε) \max_a q + ε\,\text{mean}_a q`.
-
-    Maximum and mean run over allowed actions only (``q`` holds ``-inf`` at
-    masked ones). Whatever share of the greedy mass each tied maximiser gets,
-    the expectation is the maximum, so this is the expected value under
-    tdkit's uniform tie-breaking.
-    """
-    best = q.max(axis=1)
-    if epsilon == 0.0:
-        return best
-    total = q.sum(axis=1) if masks is None else np.where(masks, q, 0.0).sum(axis=1)
-    return (1.0 - epsilon) * best + epsilon * (total / counts)
-
-
-def _operator_name(epsilon: float) -> str:
-    return "optimality" if epsilon == 0.0 else f"epsilon-greedy({epsilon!r})"
 
 
 def action_values(mdp: FiniteMDP, v: Any) -> np.ndarray:
@@ -225,8 +123,8 @@ def action_values(mdp: FiniteMDP, v: Any) -> np.ndarray:
     array([[1., 1.],
            [0., 0.]])
     """
-    mdp = _require_mdp("action_values", mdp)
-    return _action_values(mdp, _require_values("action_values", "v", v, (mdp.n_states,)))
+    mdp = require_mdp("action_values", mdp)
+    return model_action_values(mdp, require_values("action_values", "v", v, (mdp.n_states,)))
 
 
 def bellman_optimality_operator(mdp: FiniteMDP, v: Any) -> np.ndarray:
@@ -239,9 +137,9 @@ def bellman_optimality_operator(mdp: FiniteMDP, v: Any) -> np.ndarray:
     -------
     ndarray, shape (S,)
     """
-    mdp = _require_mdp("bellman_optimality_operator", mdp)
-    v = _require_values("bellman_optimality_operator", "v", v, (mdp.n_states,))
-    return _look_ahead(mdp, v).max(axis=1)
+    mdp = require_mdp("bellman_optimality_operator", mdp)
+    v = require_values("bellman_optimality_operator", "v", v, (mdp.n_states,))
+    return look_ahead(mdp, v).max(axis=1)
 
 
 def bellman_expectation_operator(mdp: FiniteMDP, v: Any, policy: Any) -> np.ndarray:
@@ -252,10 +150,10 @@ def bellman_expectation_operator(mdp: FiniteMDP, v: Any, policy: Any) -> np.ndar
     ndarray, shape (S,)
     """
     owner = "bellman_expectation_operator"
-    mdp = _require_mdp(owner, mdp)
-    v = _require_values(owner, "v", v, (mdp.n_states,))
-    pi = _policy_probabilities(owner, mdp, policy)
-    return (pi * _action_values(mdp, v)).sum(axis=1)
+    mdp = require_mdp(owner, mdp)
+    v = require_values(owner, "v", v, (mdp.n_states,))
+    pi = policy_probabilities(owner, mdp, policy)
+    return (pi * model_action_values(mdp, v)).sum(axis=1)
 
 
 def bellman_residual(mdp: FiniteMDP, q: Any, policy: Any = None) -> float:
@@ -297,75 +195,29 @@ def bellman_residual(mdp: FiniteMDP, q: Any, policy: Any = None) -> float:
     0.5
     """
     owner = "bellman_residual"
-    mdp = _require_mdp(owner, mdp)
+    mdp = require_mdp(owner, mdp)
     array = np.asarray(q, dtype=np.float64)
-    pi = None if policy is None else _policy_probabilities(owner, mdp, policy)
+    pi = None if policy is None else policy_probabilities(owner, mdp, policy)
     if array.ndim == 1:
-        v = _require_values(owner, "v", array, (mdp.n_states,))
+        v = require_values(owner, "v", array, (mdp.n_states,))
         if pi is None:
-            target = _look_ahead(mdp, v).max(axis=1)
+            target = look_ahead(mdp, v).max(axis=1)
         else:
-            target = (pi * _action_values(mdp, v)).sum(axis=1)
+            target = (pi * model_action_values(mdp, v)).sum(axis=1)
         return float(np.max(np.abs(target - v)))
     shape = (mdp.n_states, mdp.n_actions)
     masks = mdp.masks
     if masks is not None and array.shape == shape:
         array = np.where(masks, array, 0.0)  # masked entries (e.g. -inf) are not compared
-    q = _require_values(owner, "q", array, shape)
+    q = require_values(owner, "q", array, shape)
     if pi is None:
         u = (q if masks is None else np.where(masks, q, _NEG_INF)).max(axis=1)
     else:
         u = (pi * q).sum(axis=1)
-    gap = np.abs(_action_values(mdp, u) - q)
+    gap = np.abs(model_action_values(mdp, u) - q)
     if masks is not None:
         gap = gap[masks]
     return float(np.max(gap))
-
-
-def greedy_policy(q: Any, *, atol: float = 1e-9) -> GreedyPolicy:
-    """Greedy policy of action values, with ties reported.
-
-    Parameters
-    ----------
-    q : array_like, shape (S, A)
-        Finite values, or ``-inf`` for actions that may not be taken (masked
-        actions in a :class:`Solution`); every row needs a finite entry.
-    atol : float, default 1e-9
-        Actions within ``atol`` of a state's maximum count as maximisers.
-
-    Returns
-    -------
-    GreedyPolicy
-        ``policy`` (lowest-index maximiser per state, deterministic),
-        ``maximisers`` (all of them), ``ties`` and ``stochastic()``.
-
-    Examples
-    --------
-    >>> g = greedy_policy([[1.0, 3.0, 3.0], [0.0, -1.0, -2.0]])
-    >>> g.policy
-    array([1, 0])
-    >>> g.ties
-    array([ True, False])
-    >>> g.stochastic()
-    array([[0. , 0.5, 0.5],
-           [1. , 0. , 0. ]])
-    """
-    owner = "greedy_policy"
-    array = np.asarray(q, dtype=np.float64)
-    if array.ndim != 2 or array.shape[1] < 1:
-        raise InvalidParameterError(
-            f"{owner}: q must have shape (S, A) with A >= 1; got shape {array.shape}."
-        )
-    excluded = array == _NEG_INF
-    if excluded.all(axis=1).any():
-        s = int(np.argmax(excluded.all(axis=1)))
-        raise InvalidParameterError(
-            f"{owner}: q[{s}, :] is -inf everywhere; every state needs a finite action value."
-        )
-    _require_values(owner, "q", np.where(excluded, 0.0, array), array.shape)
-    atol = require_in_range(owner, "atol", atol, 0.0, math.inf)
-    maximisers = array >= array.max(axis=1, keepdims=True) - atol
-    return GreedyPolicy(np.argmax(maximisers, axis=1), maximisers)
 
 
 def epsilon_greedy_policy(
@@ -541,13 +393,6 @@ def _evaluate_krylov(chain: FiniteMDP, tol: float) -> tuple[np.ndarray, bool] | 
     return v, met
 
 
-def _progress_bar(owner: str, enabled: bool, total: int) -> AbstractContextManager[Any]:
-    """``with _progress_bar(...) as bar``: a bar counting sweeps
-    (:func:`tdkit._progress.progress_bar`), closed on exit, or None when not ``enabled``."""
-    bar = progress_bar(owner, total, enabled, unit="sweep", desc=owner)
-    return nullcontext() if bar is None else bar
-
-
 def _fixed_point(
     owner: str,
     step: Callable[[np.ndarray], np.ndarray],
@@ -574,7 +419,7 @@ def _fixed_point(
     """
     best_change, best_sweep = math.inf, 0
     change = math.inf
-    with _progress_bar(owner, progress, max_iterations) as bar:
+    with sweep_progress(owner, progress, max_iterations) as bar:
         for sweep in range(1, max_iterations + 1):
             new = step(v)
             change = float(np.max(np.abs(new - v), initial=0.0))
@@ -631,7 +476,7 @@ def _evaluate_iterative(
     v = np.zeros(chain.n_states) if v0 is None else v0
 
     def step(values: np.ndarray) -> np.ndarray:
-        return _action_values(chain, values)[:, 0]
+        return model_action_values(chain, values)[:, 0]
 
     return _fixed_point("evaluate_policy", step, v, threshold, max_iterations, gamma=gamma)[0]
 
@@ -723,8 +568,8 @@ def evaluate_policy(
     array([0.  , 0.25, 0.5 , 0.75, 0.  ])
     """
     owner = "evaluate_policy"
-    mdp = _require_mdp(owner, mdp)
-    pi = _policy_probabilities(owner, mdp, policy)
+    mdp = require_mdp(owner, mdp)
+    pi = policy_probabilities(owner, mdp, policy)
     if method not in ("auto", "direct", "sparse", "iterative"):
         raise InvalidParameterError(
             f"{owner}: method must be 'auto', 'direct', 'sparse' or 'iterative'; "
@@ -737,50 +582,6 @@ def evaluate_policy(
 
 
 # ---------------------------------------------------------------- control
-def _finish(
-    mdp: FiniteMDP,
-    v: np.ndarray,
-    iterations: int,
-    *,
-    epsilon: float = 0.0,
-    method: str,
-    error_bound: float,
-    q: np.ndarray | None = None,
-) -> Solution:
-    """Package ``v`` as a read-only :class:`Solution`.
-
-    ``q`` defaults to the look-ahead of ``v``; ``residual`` is always that of
-    ``v`` under the operator of ``epsilon``.
-    """
-    look = _look_ahead(mdp, v)
-    residual = float(np.max(np.abs(_backup(look, mdp.masks, epsilon, _allowed_counts(mdp)) - v)))
-    if q is not None:
-        look = q
-    look.flags.writeable = False
-    v = v.copy()
-    v.flags.writeable = False
-    policy = greedy_policy(look).policy
-    policy.flags.writeable = False
-    return Solution(
-        q=look,
-        v=v,
-        policy=policy,
-        iterations=iterations,
-        residual=residual,
-        operator=_operator_name(epsilon),
-        exploration=float(epsilon),
-        method=method,
-        error_bound=float(error_bound),
-    )
-
-
-def _require_exploration(owner: str, exploration: Any) -> float:
-    if isinstance(exploration, bool) or not isinstance(exploration, numbers.Real):
-        raise InvalidParameterError(
-            f"{owner}: exploration must be a float in [0, 1] (the ε of ε-greedy); got "
-            f"{exploration!r}."
-        )
-    return require_in_range(owner, "exploration", float(exploration), 0.0, 1.0)
 
 
 def _reach_terminal(mdp: FiniteMDP) -> tuple[np.ndarray, np.ndarray]:
@@ -952,32 +753,32 @@ def value_iteration(
     (1.8, 'epsilon-greedy(0.2)')
     """
     owner = "value_iteration"
-    mdp = _require_mdp(owner, mdp)
+    mdp = require_mdp(owner, mdp)
     tol = require_in_range(owner, "tol", tol, 0.0, math.inf, low_open=True)
-    epsilon = _require_exploration(owner, exploration)
+    epsilon = require_exploration(owner, exploration)
     cap = DEFAULT_MAX_ITERATIONS if max_iterations is None else max_iterations
     cap = require_positive_int(owner, "max_iterations", cap)
     gamma = mdp.gamma
     v = (
         np.zeros(mdp.n_states)
         if v0 is None
-        else _require_values(owner, "v0", v0, (mdp.n_states,)).copy()
+        else require_values(owner, "v0", v0, (mdp.n_states,)).copy()
     )
     if gamma == 1.0:
         _require_terminal_reachable(owner, mdp)
-    masks, counts = mdp.masks, _allowed_counts(mdp)
+    masks, counts = mdp.masks, allowed_counts(mdp)
 
     def step(values: np.ndarray) -> np.ndarray:
-        return _backup(_look_ahead(mdp, values), masks, epsilon, counts)
+        return policy_backup(look_ahead(mdp, values), masks, epsilon, counts)
 
     if gamma == 0.0:
-        return _finish(mdp, step(v), 1, epsilon=epsilon, method=owner, error_bound=0.0)
+        return finish_solution(mdp, step(v), 1, epsilon=epsilon, method=owner, error_bound=0.0)
     threshold = tol * (1.0 - gamma) / (2.0 * gamma) if gamma < 1.0 else tol
     v, sweeps, change = _fixed_point(
         owner, step, v, threshold, cap, gamma=gamma, progress=progress
     )
     bound = gamma / (1.0 - gamma) * change if gamma < 1.0 else math.inf
-    return _finish(mdp, v, sweeps, epsilon=epsilon, method=owner, error_bound=bound)
+    return finish_solution(mdp, v, sweeps, epsilon=epsilon, method=owner, error_bound=bound)
 
 
 def _soft_policy(policy: np.ndarray, epsilon: float, mdp: FiniteMDP) -> np.ndarray:
@@ -1045,10 +846,10 @@ def policy_iteration(
     -3
     """
     owner = "policy_iteration"
-    mdp = _require_mdp(owner, mdp)
+    mdp = require_mdp(owner, mdp)
     max_iterations = require_positive_int(owner, "max_iterations", max_iterations)
     atol = require_in_range(owner, "atol", atol, 0.0, math.inf)
-    epsilon = _require_exploration(owner, exploration)
+    epsilon = require_exploration(owner, exploration)
     masks = mdp.masks
     if initial_policy is None:
         if mdp.gamma == 1.0:
@@ -1057,7 +858,7 @@ def policy_iteration(
             rewards = mdp.R if masks is None else np.where(masks, mdp.R, _NEG_INF)
             policy = np.argmax(rewards, axis=1)
     else:
-        pi = _policy_probabilities(owner, mdp, initial_policy)
+        pi = policy_probabilities(owner, mdp, initial_policy)
         if not ((pi == 0) | (pi == 1)).all() or isinstance(initial_policy, numbers.Number):
             raise InvalidParameterError(
                 f"{owner}: initial_policy must be deterministic, (S,) action indices; "
@@ -1069,11 +870,12 @@ def policy_iteration(
     rows = np.arange(mdp.n_states)
     for iteration in range(1, max_iterations + 1):
         v = _evaluate(owner, mdp, _soft_policy(policy, epsilon, mdp))
-        q = _look_ahead(mdp, v)
+        q = look_ahead(mdp, v)
         best = q.max(axis=1)
         improve = q[rows, policy] < best - atol
         if not improve.any():
-            return _finish(mdp, v, iteration, epsilon=epsilon, method=owner, error_bound=0.0)
+            return finish_solution(mdp, v, iteration, epsilon=epsilon, method=owner,
+                                   error_bound=0.0)
         policy = np.where(improve, np.argmax(q, axis=1), policy)
     raise ConvergenceError(
         f"{owner}: no stable policy after max_iterations={max_iterations} improvement "

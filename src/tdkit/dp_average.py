@@ -45,7 +45,7 @@ from typing import Any
 import numpy as np
 
 from ._errors import InvalidParameterError
-from ._model_args import _policy_probabilities, _require_mdp
+from ._model_args import policy_probabilities, require_mdp
 from ._validation import require_in_range, require_positive_int
 from .envs.finite import FiniteMDP
 
@@ -191,7 +191,7 @@ def relative_value_iteration(
     [0.0, -1.5]
     """
     owner = "relative_value_iteration"
-    mdp = _require_mdp(owner, mdp)
+    mdp = require_mdp(owner, mdp)
     tol = require_in_range(owner, "tol", tol, 0.0, np.inf, low_open=True, high_open=True)
     max_iterations = require_positive_int(owner, "max_iterations", max_iterations)
     ref = _require_state(owner, mdp, reference_state)
@@ -326,8 +326,8 @@ def policy_gain(mdp: FiniteMDP, policy: Any) -> float:
     (1.0, 1.5)
     """
     owner = "policy_gain"
-    mdp = _require_mdp(owner, mdp)
-    probs = _policy_probabilities(owner, mdp, policy)
+    mdp = require_mdp(owner, mdp)
+    probs = policy_probabilities(owner, mdp, policy)
     chain, rewards = _restart_chain(mdp, probs)
     n = chain.shape[0]
     adjacency = chain > 0

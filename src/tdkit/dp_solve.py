@@ -72,22 +72,12 @@ from typing import Any
 
 import numpy as np
 
+from ._bellman import Solution, allowed_counts, finish_solution, look_ahead, policy_backup
 from ._errors import InvalidParameterError
-from ._model_args import _require_mdp, _require_values
+from ._model_args import require_exploration, require_mdp, require_values
+from ._progress import sweep_progress
 from ._validation import require_in_range, require_positive_int
-from .dp import (
-    DEFAULT_MAX_ITERATIONS,
-    ConvergenceError,
-    Solution,
-    _allowed_counts,
-    _backup,
-    _finish,
-    _look_ahead,
-    _progress_bar,
-    _require_exploration,
-    policy_iteration,
-    value_iteration,
-)
+from .dp import DEFAULT_MAX_ITERATIONS, ConvergenceError, policy_iteration, value_iteration
 from .envs.finite import FiniteMDP
 
 __all__ = ["METHODS", "solve"]
@@ -131,7 +121,7 @@ def _certified(
     # bound of the true 0): a uniform shift of q_u, so its greedy policy is d.
     q = q + gamma * shift
     q[mdp.terminal] = 0.0
-    return _finish(
+    return finish_solution(
         mdp,
         v,
         iterations,
@@ -196,12 +186,12 @@ def _modified_policy_iteration(
     progress: bool,
 ) -> Solution:
     owner = "modified_policy_iteration"
-    masks, counts = mdp.masks, _allowed_counts(mdp)
+    masks, counts = mdp.masks, allowed_counts(mdp)
     next_states, probs = mdp._successor_arrays()
-    with _progress_bar(owner, progress, max_iterations) as bar:
+    with sweep_progress(owner, progress, max_iterations) as bar:
         for iteration in range(1, max_iterations + 1):
-            q = _look_ahead(mdp, u)
-            backed = _backup(q, masks, epsilon, counts)
+            q = look_ahead(mdp, u)
+            backed = policy_backup(q, masks, epsilon, counts)
             if bar is not None:
                 bar.update(1)
             solution, span = _stop_test(owner, mdp, u, q, backed, target, iteration, epsilon, bar)
@@ -231,7 +221,7 @@ def _epsilon_weights(q: np.ndarray, masks: np.ndarray | None, epsilon: float) ->
 
 
 def _look_ahead_finite(mdp: FiniteMDP, v: np.ndarray) -> np.ndarray:
-    q = _look_ahead(mdp, v)
+    q = look_ahead(mdp, v)
     if mdp.masks is not None:
         q[~mdp.masks] = 0.0  # weight 0 there; avoid 0 * -inf
     return q
@@ -248,7 +238,7 @@ def _gauss_seidel(
     progress: bool,
 ) -> Solution:
     owner = "gauss_seidel"
-    masks, counts = mdp.masks, _allowed_counts(mdp)
+    masks, counts = mdp.masks, allowed_counts(mdp)
     next_states, probs = mdp._successor_arrays()
     n = mdp.n_states
     edges = np.linspace(0, n, min(_BLOCKS, n) + 1).astype(np.intp)
@@ -257,7 +247,7 @@ def _gauss_seidel(
     block_counts = [
         counts if np.isscalar(counts) else counts[block] for block in blocks  # type: ignore[index]
     ]
-    with _progress_bar(owner, progress, max_iterations) as bar:
+    with sweep_progress(owner, progress, max_iterations) as bar:
         for sweep in range(1, max_iterations + 1):
             for block, block_count in zip(blocks, block_counts, strict=True):
                 q = rewards[block] + gamma * np.einsum(
@@ -265,14 +255,14 @@ def _gauss_seidel(
                 )
                 if masks is not None:
                     q[~masks[block]] = -np.inf
-                u[block] = _backup(q, None if masks is None else masks[block], epsilon,
+                u[block] = policy_backup(q, None if masks is None else masks[block], epsilon,
                                    block_count)
             u[terminal] = 0.0
             if bar is not None:
                 bar.update(1)
             if sweep % check_every == 0 or sweep == max_iterations:
-                q = _look_ahead(mdp, u)
-                backed = _backup(q, masks, epsilon, counts)
+                q = look_ahead(mdp, u)
+                backed = policy_backup(q, masks, epsilon, counts)
                 solution, span = _stop_test(owner, mdp, u, q, backed, target, sweep, epsilon, bar)
                 if solution is not None:
                     return solution
@@ -354,13 +344,13 @@ def solve(
     True
     """
     owner = "solve"
-    mdp = _require_mdp(owner, mdp)
+    mdp = require_mdp(owner, mdp)
     if method not in METHODS:
         raise InvalidParameterError(
             f"{owner}: method must be one of {', '.join(map(repr, METHODS))}; got {method!r}."
         )
     tol = require_in_range(owner, "tol", tol, 0.0, math.inf, low_open=True)
-    epsilon = _require_exploration(owner, exploration)
+    epsilon = require_exploration(owner, exploration)
     cap = DEFAULT_MAX_ITERATIONS if max_iterations is None else max_iterations
     cap = require_positive_int(owner, "max_iterations", cap)
     evaluation_sweeps = require_positive_int(owner, "evaluation_sweeps", evaluation_sweeps)
@@ -396,7 +386,7 @@ def solve(
             f"{owner}: method={method!r} bounds its error through the discount and needs "
             "gamma < 1; got gamma=1. Use method='policy_iteration' (or 'auto')."
         )
-    u = np.zeros(mdp.n_states) if v0 is None else _require_values(
+    u = np.zeros(mdp.n_states) if v0 is None else require_values(
         owner, "v0", v0, (mdp.n_states,)
     ).copy()
     u[mdp.terminal] = 0.0

@@ -116,3 +116,28 @@ def test_saved_files_are_read_without_pickle():
         text = (SRC / (module.replace(".", "/") + ".py")).read_text(encoding="utf-8")
         assert "import pickle" not in text, module
         assert "allow_pickle=True" not in text, module
+
+
+def _private_imports(module: str) -> list[str]:
+    """Names starting with ``_`` that ``module`` imports from another tdkit module."""
+    path = SRC / (module.replace(".", "/") + ".py")
+    found = []
+    for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+        if isinstance(node, ast.ImportFrom) and (node.level or (node.module or "").startswith(
+                "tdkit")):
+            found += [f"{node.module}.{a.name}" for a in node.names
+                      if a.name.startswith("_") and not a.name.endswith("__")
+                      and a.name not in _PRIVATE_MODULES]
+    return found
+
+
+#: Private modules and packages (``from .learners import _targets`` imports a module).
+_PRIVATE_MODULES = {path.stem for path in SRC.rglob("_*.py")} | {
+    path.name for path in SRC.rglob("_*") if path.is_dir()}
+
+
+@pytest.mark.parametrize("module", _modules())
+def test_no_module_imports_another_modules_private_names(module):
+    # What two modules share is a name of a private module (tdkit._bellman.look_ahead), not
+    # a private name of a public one (tdkit.dp._look_ahead): private names stay private.
+    assert _private_imports(module) == []

@@ -95,7 +95,7 @@ class _PairIndex:
         }
 
     @staticmethod
-    def _check_index_state(state: Any, n_states: int, n_actions: int) -> set[tuple[int, int]]:
+    def _require_index_state(state: Any, n_states: int, n_actions: int) -> set[tuple[int, int]]:
         """Check the index part of a saved state; return the observed pairs."""
         _expect(isinstance(state, dict) and {"states", "actions", "predecessors", "table"}
                 <= set(state), "", state, "an object with states, actions, predecessors, table")
@@ -135,7 +135,7 @@ class _PairIndex:
         }
 
 
-def _check_predecessors(state: dict, derived: dict[int, set[tuple[int, int]]]) -> None:
+def _require_predecessors(state: dict, derived: dict[int, set[tuple[int, int]]]) -> None:
     """The saved predecessor lists must be exactly those the saved outcomes imply.
 
     They are derived data (kept in insertion order, which prioritized sweeping
@@ -223,9 +223,9 @@ class _Model(_PairIndex):
         raise NotImplementedError
 
     @classmethod
-    def check_state(cls, state: Any, n_states: int, n_actions: int) -> None:
+    def require_state(cls, state: Any, n_states: int, n_actions: int) -> None:
         """Raise ValueError naming the entry unless ``state`` fits a table of this size."""
-        pairs = cls._check_index_state(state, n_states, n_actions)
+        pairs = cls._require_index_state(state, n_states, n_actions)
         table = state["table"]
         _expect(isinstance(table, list) and len(table) == len(pairs), "table", table,
                 "one row per observed pair")
@@ -235,7 +235,7 @@ class _Model(_PairIndex):
                 derived.setdefault(s2, set()).add((row[0], row[1]))
             pairs.discard((row[0], row[1]))
         _expect(not pairs, "table", sorted(pairs), f"covered: pairs without {cls._missing}")
-        _check_predecessors(state, derived)
+        _require_predecessors(state, derived)
 
     @staticmethod
     def _checked_successors(

@@ -33,13 +33,13 @@ from ..exploration import Exploration
 from ..schedules import Schedule
 from ..tables import InitialValue
 
-__all__ = ["TRACE_KINDS", "TraceLearner", "check_trace", "trace_step"]
+__all__ = ["TRACE_KINDS", "TraceLearner", "require_trace", "trace_step"]
 
 #: The trace kinds every trace learner accepts.
 TRACE_KINDS = ("accumulating", "replacing", "dutch")
 
 
-def check_trace(owner: str, trace: object) -> str:
+def require_trace(owner: str, trace: object) -> str:
     """Return ``trace`` if it is one of :data:`TRACE_KINDS`, else raise naming it."""
     if not isinstance(trace, str) or trace not in TRACE_KINDS:
         raise InvalidParameterError(
@@ -180,7 +180,7 @@ class TraceLearner(TabularAgent):
         state_encoder: Any = None,
         action_encoder: Any = None,
     ) -> None:
-        self._check_trace_params(lam, trace, trace_cutoff)
+        self._require_trace_params(lam, trace, trace_cutoff)
         super().__init__(
             n_states, n_actions, gamma=gamma, step_size=step_size, exploration=exploration,
             initial_value=initial_value, seed=seed, state_encoder=state_encoder,
@@ -188,10 +188,10 @@ class TraceLearner(TabularAgent):
         )
         self._start_traces()
 
-    def _check_trace_params(self, lam: float, trace: str, trace_cutoff: float) -> None:
+    def _require_trace_params(self, lam: float, trace: str, trace_cutoff: float) -> None:
         name = type(self).__name__
         self.lam = require_in_range(name, "lam", lam, 0.0, 1.0)
-        self.trace = check_trace(name, trace)
+        self.trace = require_trace(name, trace)
         self.trace_cutoff = require_in_range(
             name, "trace_cutoff", trace_cutoff, 0.0, 1.0, high_open=True,
             hint="Use 0 to keep every nonzero trace (exact), or a small value like 1e-8.",

@@ -60,7 +60,7 @@ from typing import Any, ClassVar
 import numpy as np
 
 from .._errors import InvalidParameterError
-from .._greedy import check_mask, masked_max
+from .._greedy import masked_max, require_mask
 from .._seeding import SeedLike
 from .._validation import require_real
 from ..agent import TabularAgent, Transition
@@ -68,7 +68,7 @@ from ..exploration import Exploration
 from ..schedules import Schedule
 from ..tables import InitialValue
 from ._commit import CommitsNextAction
-from .prediction import _PolicyLearner
+from ._policy import PolicyLearner
 
 __all__ = ["DifferentialQLearning", "DifferentialSarsa", "DifferentialTD"]
 
@@ -253,7 +253,7 @@ class DifferentialQLearning(_DifferentialControl):
             if mask is None:
                 self._reset_state = -1
             else:
-                self._reset_mask[:] = check_mask(mask, self.n_actions)
+                self._reset_mask[:] = require_mask(mask, self.n_actions)
                 self._reset_state = self._encode(obs)
         return super().act(obs, mask=mask, explore=explore)
 
@@ -315,7 +315,7 @@ class DifferentialSarsa(_DifferentialControl, CommitsNextAction, TabularAgent):
         return float(self._q[s0, a0])
 
 
-class DifferentialTD(_AverageReward, _PolicyLearner):
+class DifferentialTD(_AverageReward, PolicyLearner):
     r"""Differential TD(0): the differential values and the gain of a given policy.
 
     .. math::

@@ -98,7 +98,7 @@ class _PlanningLearner(QLearning):
         return {"model": self._model.get_state()}
 
     def _set_extra_state(self, state: dict[str, Any]) -> None:
-        self._model.check_state(state["model"], self.n_states, self.n_actions)
+        self._model.require_state(state["model"], self.n_states, self.n_actions)
         self._model.set_state(state["model"])
 
     @property
@@ -420,7 +420,7 @@ class PrioritizedSweeping(_PlanningLearner):
         }
 
     def _set_extra_state(self, state: dict[str, Any]) -> None:
-        _check_queue(state, self.n_states, self.n_actions)
+        _require_queue(state, self.n_states, self.n_actions)
         super()._set_extra_state(state)
         self._heap = [(float(p), int(k), int(s), int(a)) for p, k, s, a in state["heap"]]
         heapq.heapify(self._heap)
@@ -433,7 +433,7 @@ class PrioritizedSweeping(_PlanningLearner):
         return len(self._queued)
 
 
-def _check_queue(state: Any, n_states: int, n_actions: int) -> None:
+def _require_queue(state: Any, n_states: int, n_actions: int) -> None:
     """Raise ValueError naming the entry unless the saved priority queue fits the table."""
 
     def pair_ok(s: Any, a: Any) -> bool:
