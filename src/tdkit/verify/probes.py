@@ -271,16 +271,25 @@ def truncation_probe(prediction: bool = False) -> Probe:
 def both_flags_probe(prediction: bool = False) -> Probe:
     r"""Episodes that terminate exactly at the time limit: ``terminated`` and ``truncated``.
 
-    The time limit is 2 steps. State 0 moves to state 1 (reward 0), and every
-    action of state 1 ends the episode with +1 on the second step, so that
-    transition carries both flags; its terminal state is reported as
+    The time limit is 2 steps. States 0 and 4 move to state 1 (reward 0), and
+    every action of state 1 ends the episode with +1 on the second step, so
+    that transition carries both flags; its terminal state is reported as
     observation 2, a start state worth 10 (both actions end at once with
-    +10, on the first step: ``terminated`` only). With :math:`\gamma = 0.9`,
-    :math:`Q^*(1, \cdot) = 1` and :math:`Q^*(0, 0) = 0.9`; an agent that
-    bootstraps whenever ``truncated`` is set learns
-    :math:`Q(1, \cdot) = 1 + 0.9 \cdot 10 = 10` and :math:`Q(0, 0) = 9`.
-    Control version: action 1 of state 0 ends at once with +2, which is
-    optimal (:math:`Q^*(0, \cdot) = (0.9, 2)`); the bug prefers action 0.
+    +10, on the first step: ``terminated`` only). Episodes start in 0, 2 or 4
+    with equal probability. With :math:`\gamma = 0.9`,
+    :math:`Q^*(1, \cdot) = 1`; an agent that bootstraps whenever
+    ``truncated`` is set learns :math:`Q(1, \cdot) = 1 + 0.9 \cdot 10 = 10`.
+    Control version: action 1 of state 0 ends at once with +2
+    (:math:`Q^*(0, \cdot) = (0.9, 2)`).
+
+    The values of states 1 and 2 are checked. State 1 is reached from start
+    4 whatever the agent does: about 267 of 800 episodes (at least 200 with
+    probability above :math:`1 - 10^{-6}`, a binomial tail), so each checked
+    pair has enough updates at step sizes from 0.1 up. State 0 is not
+    checked: its action 0 is taken only when exploring (about 5% of its
+    visits at ε = 0.1), too rarely for a budget of 800 episodes, and
+    calibration found correct Double Q-learning agents failing on it.
+
     The gymnasium step contract (``terminated`` and ``truncated`` may both be
     True; a terminal state has value 0 whatever the time limit says) is
     Towers et al. (2024), "Gymnasium: A Standard Interface for Reinforcement
@@ -288,16 +297,17 @@ def both_flags_probe(prediction: bool = False) -> Probe:
     Reinforcement Learning", ICML.
     """
     n_actions = 1 if prediction else 2
-    moves: Moves = {(0, 0): (1, 0.0), (1, -1): (3, 1.0), (2, -1): (3, 10.0)}
-    bug_moves: Moves = {(0, 0): (1, 0.0), (1, -1): (2, 1.0), (2, -1): (3, 10.0)}
+    moves: Moves = {(0, 0): (1, 0.0), (1, -1): (3, 1.0), (2, -1): (3, 10.0), (4, -1): (1, 0.0)}
+    bug_moves: Moves = {(0, 0): (1, 0.0), (1, -1): (2, 1.0), (2, -1): (3, 10.0),
+                        (4, -1): (1, 0.0)}
     if not prediction:
         moves[(0, 1)] = (3, 2.0)
         bug_moves[(0, 1)] = (3, 2.0)
-    mdp = _mdp(4, n_actions, moves, gamma=0.9, terminal=(3,), starts=(0, 2))
-    bug = _mdp(4, n_actions, bug_moves, gamma=0.9, terminal=(3,), starts=(0, 2))
+    mdp = _mdp(5, n_actions, moves, gamma=0.9, terminal=(3,), starts=(0, 2, 4))
+    bug = _mdp(5, n_actions, bug_moves, gamma=0.9, terminal=(3,), starts=(0, 2, 4))
     return Probe(
-        "both-flags-probe", mdp, mdp, value_states=(0, 1, 2),
-        choice_states=() if prediction else (0,), max_steps=2, alias={3: 2},
+        "both-flags-probe", mdp, mdp, value_states=(1, 2),
+        choice_states=(), max_steps=2, alias={3: 2},
         bug=BOTH_FLAGS, bug_model=bug,
     )
 
