@@ -229,10 +229,19 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--out", default=None, help="append one JSON line per run")
     parser.add_argument("--summarize", nargs="*", default=None, help="JSONL files to tabulate")
     parser.add_argument("--smoke", action="store_true", help="1 seed, 2 learners, 2 mutants")
+    parser.add_argument("--drop", action="append", default=[], metavar="CHECK@COMMIT",
+                        help="with --summarize: leave out a check's results from the records "
+                             "of a commit whose version of that check was replaced")
     args = parser.parse_args(argv)
     if args.summarize is not None:
         records = [json.loads(line) for f in args.summarize
                    for line in pathlib.Path(f).read_text().splitlines() if line.strip()]
+        for item in args.drop:
+            check, _, commit = item.partition("@")
+            for r in records:
+                if r.get("commit") == commit and r["variant"] != "mutant":
+                    r["checks"].pop(check, None)
+                    r["messages"].pop(check, None)
         print(summarize(records))
         return 0
     seeds = parse_seeds(args.seeds)
