@@ -25,7 +25,6 @@ guarantees:
 from __future__ import annotations
 
 import os
-import pickle  # in-memory round trip between worker processes only; files never use it
 import signal
 import socket
 import threading
@@ -42,6 +41,7 @@ from concurrent.futures import (
     wait,
 )
 from dataclasses import dataclass, field
+from multiprocessing.reduction import ForkingPickler  # what process pools send runs with
 from typing import Any, NamedTuple
 
 from .._text import describe_exception
@@ -83,8 +83,8 @@ class RunFailure:
         payload = None
         if not in_process:
             try:
-                payload = pickle.dumps(exc)
-                pickle.loads(payload)
+                payload = bytes(ForkingPickler.dumps(exc))
+                ForkingPickler.loads(payload)
             except Exception:  # any pickling failure means "text only"
                 payload = None
         return cls(
@@ -100,7 +100,7 @@ class RunFailure:
             return None
         if self.payload is not None:
             try:
-                exc = pickle.loads(self.payload)
+                exc = ForkingPickler.loads(self.payload)
             except Exception:  # rebuilt in the worker, so rare; fall back to text
                 exc = None
             if isinstance(exc, BaseException):
@@ -153,7 +153,7 @@ def _tee(original: Callable[..., Any]) -> Callable[..., Any]:
 
 def _pickles(value: Any) -> bool:
     try:
-        pickle.loads(pickle.dumps(value))
+        ForkingPickler.loads(ForkingPickler.dumps(value))
     except Exception:
         return False
     return True
