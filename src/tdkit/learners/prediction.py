@@ -227,30 +227,10 @@ class TDLambda(PolicyLearner, TraceLearner):
 
     Parameters
     ----------
-    n_states, n_actions : int
-        Table shape (states; actions of the policy).
-    policy : array_like of shape (n_states, n_actions), or callable
-        Action probabilities per state (rows sum to 1), or ``obs -> action``.
-    gamma : float, default 0.99
-        Discount factor in [0, 1].
-    step_size : float or Schedule, default 0.1
-        :math:`\alpha \in (0, 1]` or a schedule (e.g. ``VisitCount(1.0)``).
-    initial_value : float or (float, float), default 0.0
-    seed : int, Generator or None
-        Seeds the draws of actions from a policy table.
-    state_encoder, action_encoder : optional
-        See :mod:`tdkit.encoders`.
-    lam : float, default 0.9
-        Trace decay :math:`\lambda \in [0, 1]`.
-    trace : {"accumulating", "replacing", "dutch"}, default "accumulating"
-        How the visited pair's trace is bumped: :math:`z \leftarrow z + 1`,
-        :math:`z \leftarrow 1`, or the dutch trace
-        :math:`z \leftarrow (1 - \alpha) z + 1` with the true online update
-        :math:`Q \leftarrow Q + \alpha(\delta + Q_t - Q_{old}) z - \alpha (Q_t - Q_{old}) x_t`
-        (van Seijen & Sutton 2014; Sutton & Barto 2018, Section 12.8).
-    trace_cutoff : float, default 1e-8
-        Traces that decay to this value or below are dropped (``0`` keeps
-        every nonzero trace, the exact algorithm).
+    n_states, n_actions, policy, gamma, step_size, initial_value, seed
+        As for :class:`TD0`; so are ``state_encoder`` and ``action_encoder``.
+    lam, trace, trace_cutoff
+        As for :class:`~tdkit.SarsaLambda` (the trace of a state instead of a pair).
 
     Raises
     ------

@@ -116,17 +116,8 @@ class WatkinsQLambda(TraceLearner):
     n_states, n_actions, gamma, step_size, exploration, initial_value, seed
         As for :class:`~tdkit.QLearning`; so are ``state_encoder`` and
         ``action_encoder``.
-    lam : float, default 0.9
-        Trace decay :math:`\lambda \in [0, 1]`.
-    trace : {"accumulating", "replacing", "dutch"}, default "accumulating"
-        How the visited pair's trace is bumped: :math:`z \leftarrow z + 1`,
-        :math:`z \leftarrow 1`, or the dutch trace
-        :math:`z \leftarrow (1 - \alpha) z + 1` with the true online update
-        :math:`Q \leftarrow Q + \alpha(\delta + Q_t - Q_{old}) z - \alpha (Q_t - Q_{old}) x_t`
-        (van Seijen & Sutton 2014; Sutton & Barto 2018, Section 12.8).
-    trace_cutoff : float, default 1e-8
-        Traces that decay to this value or below are dropped (``0`` keeps
-        every nonzero trace, the exact algorithm).
+    lam, trace, trace_cutoff
+        As for :class:`SarsaLambda`.
 
     Raises
     ------
