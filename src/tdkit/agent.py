@@ -23,9 +23,11 @@ Semantics every tdkit learner honours
 The per-step path
 -----------------
 The public tables are numpy arrays, but one numpy scalar costs several times a
-Python float, so :class:`TabularAgent` reads and writes single entries through
-flat memory views of the same arrays and reads a row as a tuple of floats
-(:meth:`TabularAgent._row`); greedy choices then use the pure-Python forms in
+Python float. :class:`TabularAgent` therefore keeps, beside its value array,
+a cache of its rows as lists of Python floats (each loaded on first use and
+written through by every TD step) and reads rows from it
+(:meth:`TabularAgent._row`); single entries of the arrays are written through
+flat memory views. Greedy choices then use the pure-Python forms in
 :mod:`tdkit._greedy`, which pick the same action from the same random numbers
 as the numpy forms. Each distinct mask is checked and turned into an
 :class:`~tdkit._greedy.ActionSet` once (:class:`~tdkit._greedy.ActionSets`);
@@ -39,7 +41,6 @@ import inspect
 import math
 import numbers
 import operator
-import struct
 import sys
 import warnings
 from collections.abc import Sequence
@@ -189,6 +190,17 @@ class TabularAgent:
     directly; it is written nowhere else. ``_learn`` receives a plain tuple in
     :class:`Transition` field order and unpacks it by position.
 
+    The values live in a numpy array (``_values``, shown read-only as
+    :attr:`table`) and, for the per-step path, in a row cache (``_rows``:
+    one entry per state, None or the row as a list of Python floats, loaded
+    by :meth:`_load_row`). Subclasses read rows with :meth:`_row`, and write
+    entries with :meth:`_td_step` or :meth:`_set_value`, which keep array
+    and cache in step. Code that writes the array in any other way drops
+    the rows it changed (``_rows[s] = None``) or calls :meth:`_forget_rows`.
+    Taking the ``_q`` attribute (the writable array) forgets every row, so a
+    bulk write through ``_q`` stays correct as long as it reads no row
+    between taking ``_q`` and writing.
+
     Parameters
     ----------
     n_states, n_actions : int
@@ -240,15 +252,15 @@ class TabularAgent:
         "_actions_plain",
         "_all_actions",
         "_draw",
+        "_eps_const",
         "_eps_rule",
         "_own_choose",
         "_own_td_step",
-        "_qbytes",
+        "_plain_pick",
         "_qv",
-        "_row_bytes",
+        "_rows",
         "_sets",
         "_states_plain",
-        "_unpack_row",
         "_vv",
         "_width",
     )
@@ -301,22 +313,54 @@ class TabularAgent:
         self._steps_at_episode_end = 0
         self._bind_tables()
 
-    def _bind_tables(self) -> None:
-        """(Re)build the per-step views onto ``_q`` and ``_visits`` (C-contiguous 2-D arrays)."""
-        q, visits = self._q, self._visits
-        if not (q.flags.c_contiguous and visits.flags.c_contiguous):  # pragma: no cover
+    @property
+    def _q(self) -> np.ndarray:
+        """The value array, writable; taking it forgets the row cache (see the class notes)."""
+        values = self._values
+        self._rows = [None] * len(values)
+        return values
+
+    @_q.setter
+    def _q(self, values: np.ndarray) -> None:
+        if not values.flags.c_contiguous:  # pragma: no cover - tables are built contiguous
             raise RuntimeError(f"{type(self).__name__}: tables must be C-contiguous.")
-        self._width = width = q.shape[1]
-        self._qbytes = memoryview(q).cast("B")
-        self._qv = self._qbytes.cast("d")
+        self._values = values
+        self._qv = memoryview(values).cast("B").cast("d")
+        self._rows = [None] * len(values)
+
+    def _forget_rows(self) -> None:
+        """Drop every cached row (after writing ``_values`` other than entry by entry)."""
+        self._rows = [None] * len(self._values)
+
+    def _load_row(self, s: int) -> list[float]:
+        """Row ``s`` of ``_values`` as a list of Python floats, now cached in ``_rows``."""
+        row: list[float] = self._values[s].tolist()
+        self._rows[s] = row
+        return row
+
+    def _set_value(self, s: int, a: int, value: float) -> None:
+        """Write ``Q(s, a) = value`` to the array and to the row cache."""
+        value = float(value)
+        self._qv[s * self._width + a] = value
+        row = self._rows[s]
+        if row is not None:
+            row[a] = value
+
+    def _bind_tables(self) -> None:
+        """(Re)build the per-step views onto the value and count arrays (C-contiguous, 2-D)."""
+        self._q = self._values  # the memory view and an empty row cache
+        visits = self._visits
+        if not visits.flags.c_contiguous:  # pragma: no cover
+            raise RuntimeError(f"{type(self).__name__}: tables must be C-contiguous.")
+        self._width = self._values.shape[1]
         self._vv = memoryview(visits).cast("B").cast("q")
-        self._row_bytes = 8 * width
-        self._unpack_row = struct.Struct(f"{width}d").unpack_from
         self._draw = self._rng.random
         self._sets = ActionSets(self.n_actions)
         self._all_actions = range(self.n_actions)
         explore = self._explore
         self._eps_rule = explore if type(explore) is EpsilonGreedy else None
+        # A constant epsilon of that rule, read once here (None: a schedule or another rule).
+        self._eps_const = None if self._eps_rule is None else self._eps_rule._fixed
         # act goes straight to _pick unless a subclass overrides _choose.
         self._own_choose = type(self)._choose is TabularAgent._choose
         # Learners call _td_main directly only when no subclass overrides _td_step.
@@ -326,11 +370,15 @@ class TabularAgent:
         # the encoder (-1 when there is an encoder, so the test always fails).
         self._states_plain = self.n_states if self.state_encoder is None else -1
         self._actions_plain = self.n_actions if self.action_encoder is None else -1
+        # act returns _pick's index as it is: no _choose override and no action encoder.
+        self._plain_pick = self._own_choose and self.action_encoder is None
 
     def __getstate__(self) -> dict[str, Any]:
         return dict(self.__dict__)
 
     def __setstate__(self, state: dict[str, Any]) -> None:
+        if "_q" in state:  # pickled before the value array was named _values
+            state = {("_values" if k == "_q" else k): v for k, v in state.items()}
         self.__dict__.update(state)
         self._bind_tables()
 
@@ -487,16 +535,18 @@ class TabularAgent:
             False gives the greedy action (ties broken uniformly at random).
         """
         s = obs if type(obs) is int and 0 <= obs < self._states_plain else self._encode(obs)
+        if self._plain_pick:
+            return self._pick(s, None if mask is None else self._sets.get(mask), explore)
         if self._own_choose:
             a = self._pick(s, None if mask is None else self._sets.get(mask), explore)
-            return a if self._actions_plain > 0 else self._env_action(a)
+            return self._env_action(a)
         if mask is not None:
             mask = self._sets.get(mask).mask
         return self._env_action(self._choose(s, mask, explore))
 
-    def _row(self, s: int) -> tuple[float, ...]:
-        """Row ``s`` of ``_q`` as a tuple of Python floats."""
-        return self._unpack_row(self._qbytes, s * self._row_bytes)
+    def _row(self, s: int) -> list[float]:
+        """Row ``s`` of the values as a list of Python floats (the cache's: never change it)."""
+        return self._rows[s] or self._load_row(s)
 
     def _allowed(self, mask: np.ndarray | None) -> Sequence[int]:
         """The allowed actions of a mask as transitions carry it (all actions for None).
@@ -521,21 +571,21 @@ class TabularAgent:
         The action is a Python int.
         """
         if explore:
-            rule = self._eps_rule
-            if rule is None:
-                return int(self._explore.select(
-                    self._q[s], None if allowed is None else allowed.mask, self._rng,
-                    step=self.steps_, counts=self._counts_for(s),
-                ))
-            eps = rule._fixed
+            eps = self._eps_const
             if eps is None:
+                rule = self._eps_rule
+                if rule is None:
+                    return int(self._explore.select(
+                        self._values[s], None if allowed is None else allowed.mask, self._rng,
+                        step=self.steps_, counts=self._counts_for(s),
+                    ))
                 eps = rule.current(self.steps_)
             if eps > 0.0 and self._draw() < eps:
                 if allowed is None:
                     return int(self._draw() * self._width)
                 indices = allowed.indices
                 return indices[int(self._draw() * len(indices))]
-        row = self._unpack_row(self._qbytes, s * self._row_bytes)
+        row = self._rows[s] or self._load_row(s)
         # A single maximum needs no draw; ties and NaN go to greedy_index.
         if allowed is None:
             top = max(row)
@@ -713,8 +763,8 @@ class TabularAgent:
         :class:`~tdkit.InvalidParameterError` naming the step, and leaves the
         table and the counts as they were.
         """
-        if values is self._q and visits is self._visits:
-            return float(self._td_main(s, a, target, weight))
+        if values is self._values and visits is self._visits:
+            return self._td_main(s, a, float(target), float(weight))
         alpha = self._count_visit(visits, s, a)
         q = values[s, a]
         delta = target - q
@@ -738,20 +788,22 @@ class TabularAgent:
         be finite.
         """
         k = s * self._width + a
-        n = self._vv[k] + 1
+        vv = self._vv
+        n = vv[k] + 1
         alpha = self._alpha_const
         if alpha is None:
             alpha = float(self._step_size.value(self.steps_, n))
-        qv = self._qv
-        old = qv[k]
+        row = self._rows[s] or self._load_row(s)
+        old = row[a]
         delta = target - old
         if weight != 1.0:
             delta = weight * delta
         new = old + alpha * delta
         if not _LOWEST <= new <= _HIGHEST:  # inf or NaN (no numpy warning for numpy floats)
             self._refuse_overflow(s, a, target, new)
-        qv[k] = new
-        self._vv[k] = n
+        row[a] = new
+        self._qv[k] = new
+        vv[k] = n
         return delta
 
     def _refuse_overflow(self, s: int, a: int, target: float, new: float) -> None:
@@ -781,7 +833,7 @@ class TabularAgent:
     @property
     def table(self) -> np.ndarray:
         """The ``(n_states, n_actions)`` action values (read-only view)."""
-        return read_only(self._q)
+        return read_only(self._values)
 
     @property
     def visits(self) -> np.ndarray:

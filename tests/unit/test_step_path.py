@@ -105,3 +105,49 @@ def test_a_pickled_learner_continues_exactly(cls):
     clone = pickle.loads(pickle.dumps(agent))
     assert run(clone, 40) == run(agent, 40)
     np.testing.assert_array_equal(clone.table, agent.table)
+
+
+ALL_LEARNERS = [getattr(tdkit.learners, name) for name in tdkit.learners.__all__]
+PREDICTION = {"TD0", "TDLambda", "DifferentialTD"}
+
+
+def _cached_rows_match_the_array(agent):
+    for s, row in enumerate(agent._rows):
+        if row is not None:
+            assert row == agent._values[s].tolist(), f"row {s} of the cache is stale"
+            assert all(type(v) is float for v in row)
+
+
+@pytest.mark.parametrize("cls", ALL_LEARNERS, ids=lambda c: c.__name__)
+@settings(max_examples=15, deadline=None)
+@given(seed=st.integers(0, 2**16), data=st.data())
+def test_the_row_cache_always_equals_the_value_array(cls, seed, data):
+    """Every learner keeps its per-step row cache equal to its numpy table.
+
+    The cache is read by act and by the targets; a write that reaches the
+    array but not the cache (or the other way round) would make the learner
+    act and learn on values its table does not hold. Random episodes with
+    masks, time limits and cut episodes exercise every write path.
+    """
+    n_states, n_actions = 4, 3
+    extra = {"policy": [[1 / 3] * 3] * 4} if cls.__name__ in PREDICTION else {}
+    agent = cls(n_states, n_actions, seed=seed, initial_value=(-1.0, 1.0), **extra)
+    steps = data.draw(st.lists(
+        st.tuples(st.integers(0, n_states - 1), st.floats(-2, 2), st.integers(0, 9),
+                  st.lists(st.booleans(), min_size=n_actions, max_size=n_actions)),
+        min_size=1, max_size=25,
+    ))
+    s = 0
+    for s2, r, end, bits in steps:
+        mask = np.array(bits) if any(bits) else None
+        a = agent.act(s)
+        agent.observe(s, a, r, s2, end == 0, end == 1, next_mask=mask)
+        agent.update()
+        _cached_rows_match_the_array(agent)
+        if end == 2:
+            agent.end_episode()
+            _cached_rows_match_the_array(agent)
+        s = s2
+    agent._q[0] = 5.0  # a write through the writable array from outside
+    assert agent._row(0) == [5.0] * agent._values.shape[1]
+    _cached_rows_match_the_array(agent)

@@ -105,7 +105,7 @@ class PolicyLearner(TabularAgent):
     @property
     def values_table(self) -> np.ndarray:
         """The state values :math:`V`, shape ``(n_states,)`` (read-only view)."""
-        return read_only(self._q[:, 0])
+        return read_only(self._values[:, 0])
 
     v = values_table
     table = values_table
@@ -117,7 +117,7 @@ class PolicyLearner(TabularAgent):
 
     def values(self, obs: Any) -> float:
         """The estimated value :math:`V(s)` of ``obs``."""
-        return float(self._q[self._encode(obs), 0])
+        return float(self._values[self._encode(obs), 0])
 
     def q_values(self, obs: Any) -> np.ndarray:
         """Not available: prediction learners estimate state values (use :meth:`values`)."""
@@ -131,7 +131,7 @@ class PolicyLearner(TabularAgent):
         self, s2: int, next_mask: np.ndarray | None, terminated: bool, truncated: bool
     ) -> float:
         r"""The bootstrap value :math:`V(S_{t+1})` of TD(0) and TD(λ) (0 after ``terminated``)."""
-        return 0.0 if terminated else float(self._q[s2, 0])
+        return 0.0 if terminated else (self._rows[s2] or self._load_row(s2))[0]
 
     # ------------------------------------------------------------------ acting
     def act(self, obs: Any, *, mask: Any = None, explore: bool = True) -> Any:

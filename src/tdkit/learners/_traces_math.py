@@ -199,8 +199,8 @@ class TraceLearner(TabularAgent):
 
     def _start_traces(self) -> None:
         """Set up the (empty) traces; the tables must exist."""
-        self._flat = self._q.reshape(-1)
-        if not np.shares_memory(self._flat, self._q):  # pragma: no cover - tables are contiguous
+        self._flat = self._values.reshape(-1)
+        if not np.shares_memory(self._flat, self._values):  # pragma: no cover - contiguous
             raise RuntimeError(f"{type(self).__name__}: the value table must be C-contiguous.")
         self._traces: dict[int, float] = {}
         self._q_old = 0.0  # true online: the value of this step's pair as estimated last step
@@ -241,6 +241,10 @@ class TraceLearner(TabularAgent):
         target = r if terminated else r + self.gamma * q_next
         delta = target - q_sa
         dutch = self.trace == "dutch"
+        rows, width = self._rows, self._width
+        rows[s] = None  # trace_step writes the array: drop the rows it will change
+        for j in self._traces:
+            rows[j // width] = None
         bad = trace_step(
             self._flat, self._traces, k, delta, alpha, self.gamma * self.lam, self.trace,
             self.trace_cutoff, (q_sa - self._q_old) if dutch else 0.0,

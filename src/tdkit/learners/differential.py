@@ -126,7 +126,7 @@ class _AverageReward:
 
         :math:`\alpha\delta` is exactly the change the TD step made to the entry.
         """
-        values = self._q  # type: ignore[attr-defined]
+        values = self._values  # type: ignore[attr-defined]
         before = values[s, a]
         delta = self._td_step(values, self._visits, s, a, target)  # type: ignore[attr-defined]
         self.average_reward += self._eta * float(values[s, a] - before)
@@ -260,12 +260,12 @@ class DifferentialQLearning(_DifferentialControl):
     def _next_value(
         self, s2: int, next_mask: np.ndarray | None, terminated: bool, truncated: bool
     ) -> float:
-        return 0.0 if terminated else masked_max(self._q[s2], next_mask)
+        return 0.0 if terminated else masked_max(self._values[s2], next_mask)
 
     def _restart_value(self, s0: int, a0: int) -> float:
         mask = self._reset_mask if self._reset_state == s0 else None
         self._reset_state = -1
-        return masked_max(self._q[s0], mask)
+        return masked_max(self._values[s0], mask)
 
 
 class DifferentialSarsa(_DifferentialControl, CommitsNextAction, TabularAgent):
@@ -312,7 +312,7 @@ class DifferentialSarsa(_DifferentialControl, CommitsNextAction, TabularAgent):
     """
 
     def _restart_value(self, s0: int, a0: int) -> float:
-        return float(self._q[s0, a0])
+        return float(self._values[s0, a0])
 
 
 class DifferentialTD(_AverageReward, PolicyLearner):

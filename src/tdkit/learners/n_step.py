@@ -238,7 +238,7 @@ class NStepSarsa(CommitsNextAction, _NStepLearner):
 
     def _ratio(self, s: int, a: int, mask: np.ndarray | None) -> float:
         r"""Importance ratio :math:`\pi(a|s) / b(a|s)` for the greedy target policy."""
-        row = self._q[s]
+        row = self._values[s]
         top = masked_max(row, mask)
         if row[a] < top:
             return 0.0
@@ -255,7 +255,7 @@ class NStepSarsa(CommitsNextAction, _NStepLearner):
         steps = list(self._buffer)
         length = len(steps)
         gamma = self.gamma
-        q = self._q
+        q = self._values
         suffix = [0.0] * length  # suffix[j] = sum_{i >= j} gamma^(i-j) R_{i+1}
         acc = 0.0
         for j in range(length - 1, -1, -1):
@@ -337,7 +337,7 @@ class TreeBackup(_NStepLearner):
         steps = list(self._buffer)
         length = len(steps)
         gamma = self.gamma
-        q = self._q
+        q = self._values
         s2, mask2, _ = tail
         errors: list[float] = []
         for j in range(count):

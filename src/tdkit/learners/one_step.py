@@ -83,14 +83,14 @@ class QLearning(TabularAgent):
         if terminated:
             target = r
         else:
-            row = self._unpack_row(self._qbytes, s2 * self._row_bytes)
+            row = self._rows[s2] or self._load_row(s2)
             if next_mask is None:
                 target = r + self.gamma * max(row)
             else:
                 target = r + self.gamma * row_max(row, self._sets.of(next_mask))
         if self._own_td_step:  # r, gamma and the row are Python floats
             return (self._td_main(s, a, target),)
-        return (self._td_step(self._q, self._visits, s, a, target),)
+        return (self._td_step(self._values, self._visits, s, a, target),)
 
     #: Q-learning's update under a name subclasses keep when they override ``_learn``
     #: (the planning learners apply it to real and simulated transitions alike).
@@ -145,10 +145,10 @@ class Sarsa(CommitsNextAction, TabularAgent):
             target = r
         else:
             a2 = self._next_action(s2, next_mask, truncated)
-            target = r + self.gamma * self._qv[s2 * self._width + a2]
+            target = r + self.gamma * (self._rows[s2] or self._load_row(s2))[a2]
         if self._own_td_step:  # r, gamma and the entry are Python floats
             return (self._td_main(s, a, target),)
-        return (self._td_step(self._q, self._visits, s, a, target),)
+        return (self._td_step(self._values, self._visits, s, a, target),)
 
 
 class ExpectedSarsa(TabularAgent):
@@ -189,7 +189,7 @@ class ExpectedSarsa(TabularAgent):
     def _learn(self, transition: Transition) -> tuple[float, ...]:
         s, a, r, s2, terminated, _truncated, next_mask = transition
         target = r if terminated else r + self.gamma * self._expected_value(s2, next_mask)
-        return (self._td_step(self._q, self._visits, s, a, target),)
+        return (self._td_step(self._values, self._visits, s, a, target),)
 
     def _expected_value(self, s2: int, next_mask: np.ndarray | None) -> float:
         r""":math:`\sum_a \pi(a \mid s_2)\, Q(s_2, a)` under the exploration rule now.
@@ -209,7 +209,7 @@ class ExpectedSarsa(TabularAgent):
                 self._row(s2), self._allowed(next_mask), rule.temperature.value(self.steps_)
             )
         return rule.expected_value(
-            self._q[s2], next_mask, step=self.steps_, counts=self._counts_for(s2)
+            self._values[s2], next_mask, step=self.steps_, counts=self._counts_for(s2)
         )
 
 
@@ -273,7 +273,7 @@ class DoubleQLearning(TabularAgent):
             best = greedy_action(q_upd[s2], next_mask, self._rng)
             target = r + self.gamma * q_eval[s2, best]
         delta = self._td_step(q_upd, visits, s, a, target)
-        self._q[s, a] = self._q_a[s, a] + self._q_b[s, a]
+        self._set_value(s, a, self._q_a[s, a] + self._q_b[s, a])
         self._visits[s, a] += 1
         return (delta,)
 

@@ -370,7 +370,7 @@ class PrioritizedSweeping(_PlanningLearner):
 
     def _queue(self, pair: tuple[int, int]) -> None:
         """Queue ``pair`` with priority |model target - Q| if it exceeds the threshold."""
-        priority = abs(self._model_target(*pair) - self._q[pair])
+        priority = abs(self._model_target(*pair) - self._values[pair])
         if priority > self.threshold and priority > self._queued.get(pair, 0.0):
             self._queued[pair] = priority
             heapq.heappush(self._heap, (-priority, self._pushes, *pair))
@@ -396,7 +396,7 @@ class PrioritizedSweeping(_PlanningLearner):
             self._queue_predecessors(s)
 
     def _plan(self) -> None:
-        q = self._q
+        q = self._values
         visits = self._visits
         for _ in range(self.planning_steps):
             pair = self._pop()

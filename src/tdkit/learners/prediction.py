@@ -93,7 +93,7 @@ class TD0(PolicyLearner):
         target = r if terminated else r + self.gamma * self._next_value(
             s2, next_mask, terminated, truncated
         )
-        return (self._td_step(self._q, self._visits, s, 0, target),)
+        return (self._td_step(self._values, self._visits, s, 0, target),)
 
     def fit_batch(
         self,
@@ -197,7 +197,7 @@ class TD0(PolicyLearner):
         boot = np.array([row[3] for row in rows], dtype=bool)
         counts = np.bincount(s, minlength=self.n_states)
         seen = counts > 0
-        v = self._q[:, 0]
+        v = self._q[:, 0]  # taking _q forgets the row cache; no row is read below
         gamma = self.gamma
         for sweep in range(1, max_sweeps + 1):
             delta = r + gamma * np.where(boot, v[s2], 0.0) - v[s]
