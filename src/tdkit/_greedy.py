@@ -354,12 +354,23 @@ def greedy_index(
     top = max(values)
     if top != top:
         raise _nan_error(values)
-    if values.count(top) == 1:  # no tie, no draw
+    k = values.count(top)
+    if k == 1:  # no tie, no draw
         return indices[values.index(top)]
-    best = greedy_pick(row, indices, draw())
-    if best < 0:
-        raise _nan_error(values)
-    return best
+    total = sum(values)
+    if total - total != 0.0:  # a NaN (or an infinity) somewhere: the definition decides
+        best = greedy_pick(row, indices, draw())
+        if best < 0:
+            raise _nan_error(values)
+        return best
+    # All values finite: greedy_pick's choice, found with the C-level count and index.
+    pick = int(draw() * k)
+    if pick >= k:  # a rescaled u may round up to 1
+        pick = k - 1
+    i = values.index(top)
+    for _ in range(pick):
+        i = values.index(top, i + 1)
+    return indices[i]
 
 
 def row_max(row: Sequence[float], allowed: ActionSet | None) -> float:

@@ -641,10 +641,10 @@ class TabularAgent:
             else self._action_index(action)
         )
         pending = self._pending
+        if pending and len(pending) >= self._pile_up_limit - 1:  # empty after every update()
+            self._warn_pile_up(len(pending) + 1)
         pending.append((s, a, r, s2, terminated, truncated, next_mask))
         self.steps_ += 1
-        if len(pending) >= self._pile_up_limit:
-            self._warn_pile_up(len(pending))
 
     #: Pending transitions at which ``observe`` warns that ``update`` is not called
     #: (no correct loop reaches it: train calls update after every observe).
