@@ -12,7 +12,8 @@ Builds ``garnet(100_000, 4, 8, gamma=0.99)`` (Archibald, McKinnon & Thomas
 * the ratio sweep / floor. A sweep also gathers ``v`` at random successors
   and reduces over them, so a ratio of a few is the expected range.
 
-Run: ``python benchmarks/bench_value_iteration.py [--states 100000] [--repeats 20]``
+Run: ``python benchmarks/bench_value_iteration.py [--states 100000] [--repeats 20]``;
+``--smoke`` runs a tiny size (for CI).
 (``benchmarks/bench_dp.py`` compares the faster methods of ``tdkit.solve``.)
 """
 
@@ -48,7 +49,10 @@ def main() -> None:
     parser.add_argument("--tol", type=float, default=1e-6)
     parser.add_argument("--repeats", type=int, default=20)
     parser.add_argument("--seed", type=int, default=0)
+    parser.add_argument("--smoke", action="store_true", help="tiny sizes, for CI")
     args = parser.parse_args()
+    if args.smoke:
+        args.states, args.repeats = 500, 2
 
     start = time.perf_counter()
     mdp = garnet(args.states, args.actions, args.branching, gamma=args.gamma, seed=args.seed)

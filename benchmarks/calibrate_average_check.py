@@ -49,7 +49,7 @@ class AverageOfRewards(tdkit.DifferentialQLearning):
     """Bug: the average follows the rewards seen (the behaviour's gain), not the TD error."""
 
     def _differential_step(self, s, a, target):
-        return self._td_step(self._q, self._visits, s, a, target)
+        return self._td_step(self._values, self._visits, s, a, target)
 
     def observe(self, obs, action, reward, *args, **kwargs):
         super().observe(obs, action, reward, *args, **kwargs)
@@ -60,7 +60,7 @@ class NoAverage(tdkit.DifferentialQLearning):
     """Bug: the average is never learned."""
 
     def _differential_step(self, s, a, target):
-        return self._td_step(self._q, self._visits, s, a, target)
+        return self._td_step(self._values, self._visits, s, a, target)
 
 
 def _bug(cls):
