@@ -842,7 +842,7 @@ class TabularAgent:
 
     def q_values(self, obs: Any) -> np.ndarray:
         """The action values of ``obs``, shape ``(n_actions,)`` (a copy)."""
-        return self.table[self._encode(obs)].copy()
+        return self._values[self._encode(obs)].copy()
 
     @property
     def rng(self) -> np.random.Generator:
