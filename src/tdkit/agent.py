@@ -386,7 +386,7 @@ class TabularAgent:
     def _init_tables(self, initial_value: InitialValue) -> None:
         table = ActionValueTable(
             self.n_states, self.n_actions, initial_value=initial_value, rng=self._rng,
-            owner=type(self).__name__,
+            owner=type(self).__name__, bytes_per_row=8,  # the row cache's slot per state
         )
         self._q = table.values
         self._visits = table.visits

@@ -49,11 +49,15 @@ def _readable(n: int) -> str:
     return f"{n} B"
 
 
-def require_capacity(owner: str, shape: tuple[int, ...], bytes_per_entry: int) -> None:
+def require_capacity(
+    owner: str, shape: tuple[int, ...], bytes_per_entry: int, *, bytes_per_row: int = 0
+) -> None:
     """Raise :class:`CapacityError` if tables of ``shape`` cannot fit in available memory.
 
     ``bytes_per_entry`` adds up the item sizes of every array of that shape
-    about to be allocated (16 for a float64 table with int64 visit counts).
+    about to be allocated (16 for a float64 table with int64 visit counts);
+    ``bytes_per_row`` adds what is allocated once per row (``shape[0]``), such
+    as the 8-byte slot per state of a learner's row cache.
 
     Examples
     --------
@@ -62,7 +66,7 @@ def require_capacity(owner: str, shape: tuple[int, ...], bytes_per_entry: int) -
     ...
     tdkit.CapacityError: QLearning: a table of shape (1000000000000, 4) needs 64000000000000 ...
     """
-    needed = math.prod(shape) * bytes_per_entry
+    needed = math.prod(shape) * bytes_per_entry + (shape[0] * bytes_per_row if shape else 0)
     available = available_memory()
     if available is not None and needed > available:
         raise CapacityError(
@@ -126,6 +130,9 @@ class ActionValueTable:
         Source for random initial values.
     owner : str
         Name used in error messages.
+    bytes_per_row : int, default 0
+        Memory the caller will allocate per state beside the table, counted
+        in the capacity check (a learner's row cache: 8).
 
     Examples
     --------
@@ -145,10 +152,12 @@ class ActionValueTable:
         initial_value: InitialValue = 0.0,
         rng: np.random.Generator,
         owner: str = "ActionValueTable",
+        bytes_per_row: int = 0,
     ) -> None:
         n_states = require_positive_int(owner, "n_states", n_states)
         n_actions = require_positive_int(owner, "n_actions", n_actions)
-        require_capacity(owner, (n_states, n_actions), 16)  # values and visits
+        # values and visits, and what the caller keeps per state
+        require_capacity(owner, (n_states, n_actions), 16, bytes_per_row=bytes_per_row)
         self.values = initial_values((n_states, n_actions), initial_value, rng, owner=owner)
         self.visits = np.zeros((n_states, n_actions), dtype=np.int64)
 

@@ -37,6 +37,18 @@ def test_the_limit_is_the_memory_reported_available():
     require_capacity("QLearning", (1000, 4), 16)  # a small table passes
 
 
+def test_the_row_cache_slot_of_each_state_is_counted():
+    # A learner keeps one 8-byte slot per state for its row cache beside the
+    # 16 bytes an entry of values and counts: a table that fits without the
+    # slots but not with them is refused before anything is allocated.
+    available = available_memory()
+    assert available is not None
+    rows = available // 24 + 1  # 16 + 8 bytes per one-column row: just too many
+    require_capacity("TD0", (rows, 1), 16)  # fits without the slots
+    with pytest.raises(CapacityError, match=str(rows * 24)):
+        require_capacity("TD0", (rows, 1), 16, bytes_per_row=8)
+
+
 def test_capacity_errors_are_value_errors_and_tdkit_errors():
     with pytest.raises(ValueError):
         tdkit.QLearning(10**12, 4)

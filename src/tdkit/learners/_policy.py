@@ -16,7 +16,7 @@ from .._errors import InvalidParameterError
 from .._seeding import SeedLike
 from ..agent import TabularAgent
 from ..schedules import Schedule
-from ..tables import InitialValue, initial_values, read_only
+from ..tables import InitialValue, initial_values, read_only, require_capacity
 
 __all__ = ["PolicyLearner"]
 
@@ -99,6 +99,8 @@ class PolicyLearner(TabularAgent):
     # ------------------------------------------------------------------ tables
     def _init_tables(self, initial_value: InitialValue) -> None:
         owner = type(self).__name__
+        # values and counts, and the row cache's slot per state
+        require_capacity(owner, (self.n_states, 1), 16, bytes_per_row=8)
         self._q = initial_values((self.n_states, 1), initial_value, self._rng, owner=owner)
         self._visits = np.zeros((self.n_states, 1), dtype=np.int64)
 

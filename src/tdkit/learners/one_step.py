@@ -250,7 +250,8 @@ class DoubleQLearning(TabularAgent):
     def _init_tables(self, initial_value: InitialValue) -> None:
         owner = type(self).__name__
         first = ActionValueTable(
-            self.n_states, self.n_actions, initial_value=initial_value, rng=self._rng, owner=owner
+            self.n_states, self.n_actions, initial_value=initial_value, rng=self._rng, owner=owner,
+            bytes_per_row=8,  # the row cache's slot per state
         )
         second = ActionValueTable(
             self.n_states, self.n_actions, initial_value=initial_value, rng=self._rng, owner=owner
