@@ -240,15 +240,22 @@ def split_pair(seed: int, data: Replay) -> tuple[tdkit.QLearning, PurePythonQ]:
     return pair
 
 
-def main(argv: list[str] | None = None) -> None:
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+def replay_arguments(
+    description: str, argv: list[str] | None, rounds: int
+) -> tuple[argparse.Namespace, Replay]:
+    """Parse ``--steps``, ``--rounds`` and ``--smoke``; record the transitions to replay."""
+    parser = argparse.ArgumentParser(description=description)
     parser.add_argument("--steps", type=int, default=20_000)
-    parser.add_argument("--rounds", type=int, default=25)
+    parser.add_argument("--rounds", type=int, default=rounds)
     parser.add_argument("--smoke", action="store_true", help="tiny sizes, for CI")
     args = parser.parse_args(argv)
     if args.smoke:
         args.steps, args.rounds = 2_000, 1
-    data = record(args.steps, seed=0)
+    return args, record(args.steps, seed=0)
+
+
+def main(argv: list[str] | None = None) -> None:
+    args, data = replay_arguments(__doc__.splitlines()[0], argv, rounds=25)
 
     names = ["tdkit", "pure Python", "pure Python, checked", "textbook numpy",
              "pure Python, stdlib random", "tdkit, masks", "tdkit act", "pure Python act",

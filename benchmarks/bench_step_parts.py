@@ -9,13 +9,13 @@ between two neighbouring lines is the cost of one feature:
 1. ``pure Python``: the unchecked agent of ``bench_step.py``;
 2. ``+ checks``: refuses bad rewards, flags and indices, counts visits and
    writes each value through to a numpy table (``CheckedPythonQ``);
-3. ``+ pending queue``: ``observe`` appends the transition to a list and
-   counts steps, ``update`` pops it (tdkit queues transitions so that
-   multi-step learners and batched updates share one ``update``);
-4. ``+ numpy visit counts``: counts kept in a numpy array through a memory
-   view, as tdkit keeps them (schedules and UCB read them as an array);
-5. ``+ tdkit's tie rule``: ties go through ``tdkit._greedy.greedy_index``;
-6. ``tdkit``: :class:`tdkit.QLearning` itself, whose ``update`` passes through
+3. ``+ queue, numpy counts``: ``observe`` appends the transition to a list
+   and counts steps, ``update`` pops it (tdkit queues transitions so that
+   multi-step learners and batched updates share one ``update``), and visit
+   counts are kept in a numpy array through a memory view, as tdkit keeps
+   them (schedules and UCB read them as an array);
+4. ``+ tdkit's tie rule``: ties go through ``tdkit._greedy.greedy_index``;
+5. ``tdkit``: :class:`tdkit.QLearning` itself, whose ``update`` passes through
    the learner's ``_learn`` and the shared TD step, and whose verbs take
    masks, encoders, other exploration rules and schedules.
 
@@ -29,7 +29,6 @@ runs a tiny size (for CI).
 
 from __future__ import annotations
 
-import argparse
 import statistics
 from collections.abc import Callable
 from typing import Any
@@ -42,24 +41,29 @@ from bench_step import (
     GAMMA,
     CheckedPythonQ,
     PurePythonQ,
-    record,
     replay,
+    replay_arguments,
     tdkit_agent,
 )
 from tdkit._greedy import greedy_index
 
 
 class QueuedQ(CheckedPythonQ):
-    """``CheckedPythonQ`` whose transitions go through a pending list, with a step counter.
+    """``CheckedPythonQ`` with tdkit's bookkeeping: a pending list, a step counter, numpy counts.
 
-    Each agent here is written out flat (no calls to the parent's verbs), so
-    that no call layer is counted as the cost of a feature.
+    Transitions go through a list (``observe`` appends, ``update`` pops) and
+    visit counts live in a numpy array read and written through a memory
+    view, as tdkit keeps them. Each agent here is written out flat (no calls
+    to the parent's verbs), so that no call layer is counted as the cost of
+    a feature.
     """
 
     def __init__(self, n_states: int, n_actions: int, draw: Callable[[], float]) -> None:
         super().__init__(n_states, n_actions, draw)
         self.queue: list[tuple[Any, ...]] = []
         self.steps = 0
+        self.counts = np.zeros((n_states, n_actions), dtype=np.int64)
+        self.counts_flat = memoryview(self.counts).cast("B").cast("q")
 
     def observe(self, s: int, a: int, r: float, s2: int, terminated: bool, truncated: bool) -> None:
         if type(r) is not float or r - r != 0.0:
@@ -86,35 +90,13 @@ class QueuedQ(CheckedPythonQ):
             if new - new != 0.0:
                 raise ValueError("the update overflows")
             row[a] = new
-            self.flat[s * self.n_actions + a] = new
-            self.visits[s][a] += 1
-
-
-class NumpyCountsQ(QueuedQ):
-    """``QueuedQ`` with visit counts in a numpy array, read and written through a memory view."""
-
-    def __init__(self, n_states: int, n_actions: int, draw: Callable[[], float]) -> None:
-        super().__init__(n_states, n_actions, draw)
-        self.counts = np.zeros((n_states, n_actions), dtype=np.int64)
-        self.counts_flat = memoryview(self.counts).cast("B").cast("q")
-
-    def update(self) -> None:
-        queue = self.queue
-        if len(queue) == 1:
-            s, a, r, s2, terminated, _truncated, _mask = queue.pop()
-            target = r if terminated else r + GAMMA * max(self.q[s2])
-            row = self.q[s]
-            new = row[a] + ALPHA * (target - row[a])
-            if new - new != 0.0:
-                raise ValueError("the update overflows")
-            row[a] = new
             k = s * self.n_actions + a
             self.flat[k] = new
             self.counts_flat[k] = self.counts_flat[k] + 1
 
 
-class TieRuleQ(NumpyCountsQ):
-    """``NumpyCountsQ`` breaking greedy ties with tdkit's ``greedy_index``."""
+class TieRuleQ(QueuedQ):
+    """``QueuedQ`` breaking greedy ties with tdkit's ``greedy_index``."""
 
     def act(self, s: int) -> int:
         if self.draw() < EPSILON:
@@ -127,19 +109,11 @@ class TieRuleQ(NumpyCountsQ):
 
 
 def main(argv: list[str] | None = None) -> None:
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--steps", type=int, default=20_000)
-    parser.add_argument("--rounds", type=int, default=15)
-    parser.add_argument("--smoke", action="store_true", help="tiny sizes, for CI")
-    args = parser.parse_args(argv)
-    if args.smoke:
-        args.steps, args.rounds = 2_000, 1
-    data = record(args.steps, seed=0)
+    args, data = replay_arguments(__doc__.splitlines()[0], argv, rounds=15)
     makers: dict[str, Callable[[int], Any]] = {
         "pure Python": lambda k: PurePythonQ(500, 6, np.random.default_rng(k).random),
         "+ checks": lambda k: CheckedPythonQ(500, 6, np.random.default_rng(k).random),
-        "+ pending queue": lambda k: QueuedQ(500, 6, np.random.default_rng(k).random),
-        "+ numpy visit counts": lambda k: NumpyCountsQ(500, 6, np.random.default_rng(k).random),
+        "+ queue, numpy counts": lambda k: QueuedQ(500, 6, np.random.default_rng(k).random),
         "+ tdkit's tie rule": lambda k: TieRuleQ(500, 6, np.random.default_rng(k).random),
         "tdkit": tdkit_agent,
     }

@@ -256,7 +256,6 @@ class TabularAgent:
         "_eps_rule",
         "_own_choose",
         "_own_td_step",
-        "_plain_pick",
         "_qv",
         "_rows",
         "_sets",
@@ -370,8 +369,6 @@ class TabularAgent:
         # the encoder (-1 when there is an encoder, so the test always fails).
         self._states_plain = self.n_states if self.state_encoder is None else -1
         self._actions_plain = self.n_actions if self.action_encoder is None else -1
-        # act returns _pick's index as it is: no _choose override and no action encoder.
-        self._plain_pick = self._own_choose and self.action_encoder is None
 
     def __getstate__(self) -> dict[str, Any]:
         return dict(self.__dict__)
@@ -535,11 +532,9 @@ class TabularAgent:
             False gives the greedy action (ties broken uniformly at random).
         """
         s = obs if type(obs) is int and 0 <= obs < self._states_plain else self._encode(obs)
-        if self._plain_pick:
-            return self._pick(s, None if mask is None else self._sets.get(mask), explore)
         if self._own_choose:
             a = self._pick(s, None if mask is None else self._sets.get(mask), explore)
-            return self._env_action(a)
+            return a if self._actions_plain > 0 else self._env_action(a)
         if mask is not None:
             mask = self._sets.get(mask).mask
         return self._env_action(self._choose(s, mask, explore))
