@@ -13,6 +13,7 @@ Usage::
     python benchmarks/calibrate_verify.py --level quick --seeds 1-300 --jobs 2
     python benchmarks/calibrate_verify.py --learners QLearning,Sarsa --seeds 1-20
     python benchmarks/calibrate_verify.py --mutants-only --seeds 1-50 --named-check-only
+    python benchmarks/calibrate_verify.py --checks next_action,convergence --mutants none
     python benchmarks/calibrate_verify.py --shard 0/4 --out part0.jsonl   # a quarter
     python benchmarks/calibrate_verify.py --summarize part*.jsonl         # the table
     python benchmarks/calibrate_verify.py --smoke                         # seconds
@@ -112,13 +113,14 @@ def run_one(job: tuple[str, str, str, int]) -> dict:
     from tdkit.verify import run_check, verify_agent
 
     started = time.perf_counter()
-    if len(job) > 4:  # a planted bug, only the check that names it (run_check)
-        result = run_check(make_factory(name, variant), job[4], level=level, seed=seed)
+    if len(job) > 4:  # only the checks named in job[4] (run_check), e.g. a planted bug's
+        results = [run_check(make_factory(name, variant), check, level=level, seed=seed)
+                   for check in job[4]]
         return {
             "learner": name, "variant": variant, "level": level, "seed": seed,
             "seconds": round(time.perf_counter() - started, 2), "commit": COMMIT,
-            "checks": {result.name: result.status},
-            "messages": {result.name: result.message} if result.failed else {},
+            "checks": {r.name: r.status for r in results},
+            "messages": {r.name: r.message for r in results if r.failed},
         }
     report = verify_agent(make_factory(name, variant), level=level, seed=seed)
     return {
@@ -224,6 +226,9 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--mutants-only", action="store_true")
     parser.add_argument("--named-check-only", action="store_true",
                         help="for planted bugs, run only the check that names the bug")
+    parser.add_argument("--checks", default=None,
+                        help="comma-separated check names: run only these on the correct "
+                             "learners (to re-measure checks changed since earlier records)")
     parser.add_argument("--jobs", type=int, default=1)
     parser.add_argument("--shard", default="0/1", help="i/n: run every n-th job from i")
     parser.add_argument("--out", default=None, help="append one JSON line per run")
@@ -254,10 +259,11 @@ def main(argv: list[str] | None = None) -> int:
         seeds, learners, variants, mutants = [1], ["QLearning", "TD0"], ["defaults"], \
             all_mutants[:2]
     duplicates = {n for n in learners if n not in PREDICTION and same_as_defaults(n)}
-    jobs = [(n, v, args.level, s) for s in seeds for n in learners for v in variants
+    only = () if args.checks is None else (tuple(args.checks.split(",")),)
+    jobs = [(n, v, args.level, s, *only) for s in seeds for n in learners for v in variants
             if not (v == "recommended" and n in duplicates and "defaults" in variants)]
     named = _mutants_module().MUTANT_CHECKS
-    jobs += [(m, "mutant", args.level, s, *([named[m]] if args.named_check_only else []))
+    jobs += [(m, "mutant", args.level, s, *([(named[m],)] if args.named_check_only else []))
              for s in seeds for m in mutants]
     index, count = (int(x) for x in args.shard.split("/"))
     jobs = jobs[index::count]

@@ -117,6 +117,29 @@ def test_double_q_learning_defaults_pass_both_flags_on_the_seeds_that_once_faile
     assert result.passed, result
 
 
+# Found by the calibration at quick seeds 1-208 (commit f181168), mended since:
+# * next_action failed Double Q-learning's defaults on seeds 162 and 166. It reports the
+#   mean of its two tables but bootstraps on one of them; on the deterministic probe the
+#   two tables held equal entries, so a target decoded, by coincidence, as a bootstrap on a
+#   non-greedy mean entry. The check now reads targets only of agents all of whose
+#   one-step updates decode, and skips Double Q-learning with the reason.
+# * convergence failed Sarsa(lambda)'s defaults on seed 162: the final greedy action of a
+#   seldom visited corner stepped into the wall. The greedy action is now read from the
+#   iterate-averaged values with a derived margin (_judge_average_policy).
+@pytest.mark.parametrize("seed", [162, 166])
+def test_double_q_learning_is_not_judged_on_next_actions_it_cannot_name(seed):
+    result = run_check(learner_factory("DoubleQLearning", recommended=False), "next_action",
+                       level="quick", seed=seed)
+    assert result.skipped, result
+    assert "do not read as R + gamma Q(s', a')" in result.message
+
+
+def test_sarsa_lambda_defaults_pass_convergence_on_the_seed_that_once_failed():
+    result = run_check(learner_factory("SarsaLambda", recommended=False), "convergence",
+                       level="quick", seed=162)
+    assert result.passed, result
+
+
 def test_a_last_outcome_planner_is_not_held_to_q_star_on_a_stochastic_problem():
     result = run_check(learner_factory("PrioritizedSweeping", recommended=False),
                        "convergence", level="full", seed=1)

@@ -168,6 +168,23 @@ class SampleAverageStepSize(QLearning):
         return float(delta)
 
 
+class MinimisingTarget(QLearning):
+    """Bootstraps on the worst next action: target R + gamma min_a Q(S', a)."""
+
+    def _learn(self, transition):
+        s, a, r, s2, terminated, _truncated, next_mask = transition
+        row = self._q[s2] if next_mask is None else self._q[s2][next_mask]
+        target = r if terminated else r + self.gamma * float(row.min())
+        return (self._td_step(self._q, self._visits, s, a, target),)
+
+
+class ReportsValuesUnderTheWrongAction(QLearning):
+    """Learns correctly, but ``q_values`` shifts each row by one action (an indexing bug)."""
+
+    def q_values(self, obs):
+        return np.roll(super().q_values(obs), 1)
+
+
 class HalvingEncoder:
     """Sends observations 2k and 2k + 1 to the same row (a collision-prone encoder)."""
 
@@ -211,6 +228,9 @@ MUTANTS = [
     pytest.param(_factory(CarriesTracesAcrossEpisodes), "episode_boundaries",
                  id="carries-traces-across-episodes"),
     pytest.param(_factory(SampleAverageStepSize), "step_size", id="one-over-n-step-size"),
+    pytest.param(_factory(MinimisingTarget), "convergence", id="minimising-target"),
+    pytest.param(_factory(ReportsValuesUnderTheWrongAction), "convergence",
+                 id="values-under-the-wrong-action"),
 ]
 
 #: The words each mutant's failure message must contain (it names the bug it saw).
@@ -226,6 +246,8 @@ NAMES = {
     "first-index-ties": "lowest index",
     "ignores-masks-in-targets": "masked actions",
     "missing-gamma": "missing discount",
+    "minimising-target": "iterate average over the second half of training",
+    "values-under-the-wrong-action": "greedy action of the averaged values",
 }
 
 #: For the calibration script (benchmarks/calibrate_verify.py): name -> factory / check.
@@ -253,7 +275,7 @@ def test_the_unmutated_parents_pass_the_same_checks():
     # the checks their mutants fail (so those failures come from the bugs).
     for cls, checks in [
         (QLearning, ["terminal", "truncation", "both_flags", "tie_breaking", "masks",
-                     "discounted_returns", "state_encoding", "step_size"]),
+                     "discounted_returns", "state_encoding", "step_size", "convergence"]),
         (Sarsa, ["next_action"]),
         (NStepSarsa, ["discounted_returns", "episode_boundaries"]),
         (SarsaLambda, ["episode_boundaries"]),
