@@ -1,0 +1,70 @@
+"""The calibration script's summary counts each run of a check once.
+
+``benchmarks/calibrate_verify.py`` combines records from pieces run on
+different days, and re-measures changed checks with ``--checks``; a seed
+covered twice must not count twice, and a re-measured check must replace the
+older result of the same run.
+"""
+
+from __future__ import annotations
+
+import importlib.util
+import json
+import pathlib
+
+import pytest
+
+SCRIPT = pathlib.Path(__file__).resolve().parents[2] / "benchmarks" / "calibrate_verify.py"
+
+
+@pytest.fixture(scope="module")
+def calibrate():
+    spec = importlib.util.spec_from_file_location("_calibrate_verify", SCRIPT)
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+def _record(seed, checks, commit="aaa", seconds=1.0, learner="QLearning"):
+    return {"learner": learner, "variant": "defaults", "level": "quick", "seed": seed,
+            "seconds": seconds, "commit": commit, "checks": dict(checks),
+            "messages": {c: "why" for c, s in checks.items() if s == "failed"}}
+
+
+def test_a_seed_run_twice_counts_once(calibrate):
+    records = [_record(1, {"terminal": "passed", "convergence": "failed"}),
+               _record(1, {"terminal": "passed", "convergence": "failed"}, commit="bbb"),
+               _record(2, {"terminal": "passed", "convergence": "passed"})]
+    merged = calibrate.merge_records(records)
+    assert len(merged) == 2
+    text = calibrate.summarize(records)
+    assert "| quick | convergence | 1/2 |" in text
+    assert "| quick | terminal | 0/2 |" in text
+
+
+def test_a_re_measured_check_replaces_the_older_result_of_the_same_run(calibrate):
+    old = _record(1, {"terminal": "passed", "convergence": "failed"}, seconds=5.0)
+    new = _record(1, {"convergence": "passed"}, commit="bbb", seconds=2.0)
+    (merged,) = calibrate.merge_records([old, new])
+    assert merged["checks"] == {"terminal": "passed", "convergence": "passed"}
+    assert merged["messages"] == {}  # the old failure's message went with it
+    assert merged["seconds"] == 5.0 and merged["commit"] == "aaa+bbb"
+    # The inputs are left as they were.
+    assert old["checks"]["convergence"] == "failed"
+
+
+def test_drop_and_merge_from_the_command_line(calibrate, tmp_path, capsys):
+    first = tmp_path / "old.jsonl"
+    second = tmp_path / "new.jsonl"
+    first.write_text("\n".join(json.dumps(_record(s, {"terminal": "passed",
+                                                      "convergence": "failed"}))
+                               for s in (1, 2, 3)) + "\n")
+    second.write_text("\n".join(json.dumps(_record(s, {"convergence": "passed"}, commit="bbb"))
+                                for s in (1, 2)) + "\n")
+    calibrate.main(["--summarize", str(first), str(second), "--drop", "convergence@aaa"])
+    text = capsys.readouterr().out
+    # Seed 3's old convergence result is dropped; seeds 1-2 are the re-measured ones.
+    assert "| quick | convergence | 0/2 |" in text
+    assert "| quick | terminal | 0/3 |" in text
+    assert "| quick | QLearning | defaults | 2-3 | 0 | - |" in text.replace(
+        "defaults = recommended", "defaults")
