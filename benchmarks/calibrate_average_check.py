@@ -3,7 +3,7 @@
 Runs ``tdkit.verify._average_checks.check_average_reward`` for tdkit's three
 average-reward learners (with the factories a team would use, as in
 tests/unit/learners/test_differential.py) over many seeds and counts failures, which are
-false alarms: the check's margin is derived for a rate of 1/1000. With zero
+false alarms: the check's margin is derived for a rate of 1e-5. With zero
 failures in n seeds the one-sided 95% upper bound on the rate is
 1 - 0.05**(1/n) (about 3/n). It then runs three deliberately broken learners
 and counts how often the check catches them (its power).
@@ -75,7 +75,7 @@ def main() -> None:
     args = parser.parse_args()
     seeds = 3 if args.smoke else args.seeds
     bug_seeds = 3 if args.smoke else args.bug_seeds
-    print(f"false alarms of check_average_reward over {seeds} seeds (derived for 1/1000):")
+    print(f"false alarms of check_average_reward over {seeds} seeds (derived for 1e-5 per run):")
     for cls in (tdkit.DifferentialQLearning, tdkit.DifferentialSarsa, tdkit.DifferentialTD):
         if not seeds:
             break

@@ -21,6 +21,7 @@ from tdkit.stats import (
     gammaincc,
     iqm,
     mean,
+    student_t_isf,
     student_t_sf,
     summarize_scores,
     welch_test,
@@ -52,6 +53,20 @@ def test_student_t_sf_matches_scipy(t, df):
     # abs 1e-8: near t = 0 scipy's sf loses digits (at t = 1e-8, df = 1 it is off by 1.6e-9
     # from the exact 1/2 - arctan(t)/pi); the closed forms below pin those cases down.
     assert student_t_sf(t, df) == pytest.approx(sps.t.sf(t, df), abs=1e-8, rel=1e-9)
+
+
+@settings(max_examples=200)
+@given(st.floats(1e-9, 0.5), st.floats(0.5, 200.0))
+def test_student_t_isf_inverts_the_survival_function_like_scipy(p, df):
+    t = student_t_isf(p, df)
+    assert student_t_sf(t, df) == pytest.approx(p, rel=1e-6, abs=1e-15)
+    assert t == pytest.approx(sps.t.isf(p, df), rel=1e-6, abs=1e-9)
+
+
+@pytest.mark.parametrize("p", [0.0, -0.1, 0.6, float("nan")])
+def test_student_t_isf_refuses_a_level_outside_its_range(p):
+    with pytest.raises(InvalidParameterError, match="student_t_isf: p"):
+        student_t_isf(p, 5)
 
 
 @settings(max_examples=200)

@@ -82,7 +82,8 @@ from .._errors import InvalidParameterError
 from ..dp import evaluate_policy, value_iteration
 from ..envs import problems
 from ..runs import require_update_result
-from ..stats import chi2_sf, student_t_sf
+from ..stats import chi2_sf, student_t_isf
+from ._behaviour import BehaviourReading
 from ._driver import (
     AgentFault,
     AgentKind,
@@ -1100,39 +1101,19 @@ READ_EVERY = 5
 """The values are read after every 5th update for the batch means (consecutive readings
 differ by one step of size alpha, so thinning loses little and saves most of the cost)."""
 
-EXPLORATION_Z = 3.29
-"""Normal quantile of the exploration-rate interval (two-sided 99.9%)."""
-
-
-def _t_quantile(two_sided: float, df: int) -> float:
-    """``t`` with ``P(|T_df| > t) = two_sided`` (bisection on :func:`tdkit.stats.student_t_sf`)."""
-    low, high = 0.0, 1e3
-    for _ in range(200):
-        mid = (low + high) / 2
-        if 2 * student_t_sf(mid, df) > two_sided:
-            low = mid
-        else:
-            high = mid
-    return high
 
 
 class _ConvergenceWatcher(Watcher):
     """What the convergence check reads while the agent trains (second half of the run).
 
-    * Batch means of the values (read after every update): their grand mean
-      is the iterate average (Polyak & Juditsky 1992), which removes the
-      fluctuation of a constant step size; the spread of the ``BATCHES``
-      batch means gives its standard error (batch means; Schmeiser 1982).
-    * The exploration rate actually shown: the share of actions that are not
-      greedy by the agent's own ``q_values`` just before ``act``. An
-      epsilon-greedy rule picks a non-greedy action with probability
-      ``epsilon (1 - g/n)`` (``g`` greedy among ``n`` actions), so
-      ``epsilon = k / sum(1 - g/n)`` with a Wilson interval on ``k``.
-    * Whether targets follow the behaviour (on-policy): one-step targets are
-      read as in :func:`check_next_action`; a bootstrap on a non-greedy
-      entry (a sampled next action) or on a consistent epsilon-mixture of the
-      row (an expectation under the exploring policy) is on-policy evidence; a
-      bootstrap on the row's maximum is off-policy evidence.
+    * Batch means of the values (read after every ``READ_EVERY``-th update):
+      their grand mean is the iterate average (Polyak & Juditsky 1992), which
+      removes the fluctuation of a constant step size; the spread of the
+      ``BATCHES`` batch means gives its standard error (batch means;
+      Schmeiser 1982).
+    * For agents with ``q_values``, the exploration rate actually shown and
+      whether the targets follow the behaviour (on-policy):
+      :class:`~tdkit.verify._behaviour.BehaviourReading`.
     """
 
     def __init__(self, agent: Any, kind: AgentKind, states: list[int], episodes: int,
@@ -1140,46 +1121,21 @@ class _ConvergenceWatcher(Watcher):
         self.agent, self.kind, self.states = agent, kind, states
         self.start = episodes // 2
         self.window = episodes - self.start
-        self.gamma = gamma
         self.sums: list[np.ndarray | None] = [None] * BATCHES
         self.counts = np.zeros(BATCHES, dtype=int)
-        self.non_greedy = 0
-        self.acts = 0
-        self.share = 0.0
-        self.greedy_targets = 0
-        self.sampled_targets = 0
-        self.expected_targets = 0
-        self._implied: float | None = None
-        self._rows: tuple[np.ndarray, np.ndarray] | None = None
-        self._expect: tuple[int, int] | None = None
+        self.reading = BehaviourReading(agent, gamma) if kind.q_values else None
         self._tick = 0
 
     def _batch(self, episode: int) -> int:
         return min(BATCHES - 1, (episode - self.start) * BATCHES // self.window)
 
     def after_act(self, episode: int, step: int, obs: Any, action: Any) -> None:
-        if self._expect is not None:
-            # a bootstrap on a non-greedy entry counts as on-policy when act then takes it
-            if self._expect == (int(obs), int(action)):
-                self.sampled_targets += 1
-            self._expect = None
-        if episode < self.start or not self.kind.q_values:
-            return
-        row = read_q(self.agent, [obs])[0]
-        top = row.max()
-        greedy = row >= top - 1e-12 * (1.0 + abs(top))
-        self.acts += 1
-        self.share += 1.0 - greedy.sum() / row.size
-        if not greedy[int(action)]:
-            self.non_greedy += 1
+        if episode >= self.start and self.reading is not None:
+            self.reading.after_act(obs, action)
 
     def before_observe(self, episode: int, step: int, transition: tuple) -> None:
-        self._rows = None
-        if episode < self.start or not self.kind.q_values:
-            return
-        obs, _, _, next_obs, terminated, truncated, _ = transition
-        if not (terminated or truncated):
-            self._rows = (read_q(self.agent, [obs])[0], read_q(self.agent, [next_obs])[0])
+        if episode >= self.start and self.reading is not None:
+            self.reading.before_observe(transition)
 
     def after_update(self, episode: int, step: int, transition: tuple, errors: tuple) -> None:
         if episode < self.start or not (self.kind.q_values or self.kind.values):
@@ -1190,28 +1146,8 @@ class _ConvergenceWatcher(Watcher):
             b = self._batch(episode)
             self.sums[b] = table if self.sums[b] is None else self.sums[b] + table
             self.counts[b] += 1
-        if self._rows is not None and len(errors) == 1:
-            self._read_target(transition, errors[0])
-
-    def _read_target(self, transition: tuple, error: float) -> None:
-        obs, action, reward, next_obs = transition[:4]
-        row, row2 = self._rows
-        after = read_q(self.agent, [obs])[0]
-        changed = np.flatnonzero(after != row)
-        if changed.tolist() != [int(action)] or self.gamma == 0:
-            return
-        boot = (row[int(action)] + error - float(reward)) / self.gamma
-        top, low, mean = row2.max(), row2.min(), row2.mean()
-        tol = 1e-9 * (1.0 + float(np.abs(row2).max()) + abs(boot))
-        if abs(boot - top) <= tol:
-            self.greedy_targets += 1
-        elif np.any(np.abs(row2 - boot) <= tol) and low < top:
-            self._expect = (int(next_obs), int(np.flatnonzero(np.abs(row2 - boot) <= tol)[0]))
-        elif low - tol <= boot < top and top - mean > 1e-6:
-            implied = float((top - boot) / (top - mean))
-            if self._implied is not None and abs(implied - self._implied) <= 1e-6:
-                self.expected_targets += 1
-            self._implied = implied
+        if self.reading is not None:
+            self.reading.after_update(transition, errors)
 
     # ---------------------------------------------------------------- summaries
     def batch_means(self) -> np.ndarray:
@@ -1221,25 +1157,11 @@ class _ConvergenceWatcher(Watcher):
 
     @property
     def policy_kind(self) -> str:
-        if self.sampled_targets or self.expected_targets:
-            return "on-policy"
-        if self.greedy_targets:
-            return "off-policy"
-        return "undetermined"
+        return "undetermined" if self.reading is None else self.reading.policy_kind
 
     def exploration(self) -> tuple[float, float, float] | None:
         """(low, estimate, high) of the exploration rate, or None when not measured."""
-        if self.acts == 0 or self.share <= 0:
-            return None
-        n, k, z = self.acts, self.non_greedy, EXPLORATION_Z
-        p = k / n
-        centre = (p + z * z / (2 * n)) / (1 + z * z / n)
-        half = z * np.sqrt(p * (1 - p) / n + z * z / (4 * n * n)) / (1 + z * z / n)
-        per_act = self.share / n
-        def clip(x: float) -> float:
-            return float(min(1.0, max(0.0, x / per_act)))
-
-        return clip(centre - half), clip(p), clip(centre + half)
+        return None if self.reading is None else self.reading.exploration()
 
 
 def _judge_convergence(
@@ -1264,7 +1186,7 @@ def _judge_convergence(
     spread = batches.std(axis=0, ddof=1) if len(batches) > 1 else 0 * batches[0]
     se_pair = spread / np.sqrt(len(batches))  # (states, actions)
     se = per_batch.std(axis=0, ddof=1) / np.sqrt(len(batches)) if len(batches) > 1 else 0 * estimate
-    t = _t_quantile(CONVERGENCE_FALSE_ALARM / tests, max(1, len(batches) - 1))
+    t = student_t_isf(CONVERGENCE_FALSE_ALARM / tests / 2, max(1, len(batches) - 1))
     margin = tol + t * se
     targets = [("the optimum Q*", solution.v, solution, None)]
     measured = watcher.exploration()

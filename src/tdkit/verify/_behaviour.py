@@ -1,0 +1,145 @@
+r"""What an agent's behaviour and one-step targets show while it trains.
+
+Two checks need to know whether an agent's estimates should match the optimum
+or the values of its own exploring policy: ``convergence`` (discounted
+values, :func:`tdkit.verify.checks.check_convergence`) and ``average_reward``
+(the gain, :mod:`tdkit.verify._average_checks`). Both read the same two
+things from the protocol alone, with :class:`BehaviourReading`:
+
+* **The exploration rate actually shown**: the share of actions that are not
+  greedy by the agent's own ``q_values`` just before ``act``. An ε-greedy
+  rule picks a non-greedy action with probability :math:`\varepsilon (1 -
+  g/n)` (``g`` greedy among ``n`` actions), so :math:`\hat\varepsilon = k /
+  \sum (1 - g/n)`, with a Wilson score interval on ``k`` (Wilson 1927,
+  JASA 22) at the two-sided 99.9% level (``EXPLORATION_Z``).
+* **Whether targets follow the behaviour (on-policy)**: after an update that
+  returns one TD error :math:`\delta` and changes only :math:`Q(s, a)`, the
+  bootstrap value is :math:`b = (Q(s, a) + \delta - (R - c)) / \gamma`, with
+  ``Q`` as ``q_values`` reported it before the update and :math:`c` the
+  reward baseline the target subtracts (0 for discounted agents; the
+  average reward :math:`\bar R` read before the update for differential
+  agents, with :math:`\gamma = 1`; Sutton & Barto 2018, Section 10.3). A
+  bootstrap on the row's maximum is off-policy evidence; one on a
+  non-greedy entry that ``act`` then takes (a sampled next action), or on a
+  consistent ε-mixture of the row (an expectation under the exploring
+  policy), is on-policy evidence.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from typing import Any
+
+import numpy as np
+
+from ._driver import read_q
+
+__all__ = ["EXPLORATION_Z", "BehaviourReading"]
+
+EXPLORATION_Z = 3.29
+"""Normal quantile of the exploration-rate interval (two-sided 99.9%)."""
+
+
+class BehaviourReading:
+    """Exploration shown and the kind of one-step targets, read step by step.
+
+    The owner (a :class:`~tdkit.verify._driver.Watcher`) calls the three
+    methods for the steps it wants read; the agent must have ``q_values``.
+
+    Parameters
+    ----------
+    agent : object
+        The agent being trained.
+    gamma : float
+        Discount of the targets (1 for average-reward agents).
+    baseline : callable, optional
+        Returns the reward baseline :math:`c` the agent's target subtracts,
+        read before each ``observe`` (``lambda: agent.average_reward`` for a
+        differential agent); None for 0.
+    """
+
+    def __init__(self, agent: Any, gamma: float,
+                 baseline: Callable[[], float] | None = None) -> None:
+        self.agent = agent
+        self.gamma = gamma
+        self.baseline = baseline
+        self.non_greedy = 0
+        self.acts = 0
+        self.share = 0.0
+        self.greedy_targets = 0
+        self.sampled_targets = 0
+        self.expected_targets = 0
+        self._implied: float | None = None
+        self._rows: tuple[np.ndarray, np.ndarray, float] | None = None
+        self._expect: tuple[int, int] | None = None
+
+    def after_act(self, obs: Any, action: Any) -> None:
+        """Count a greedy or non-greedy action; confirm a sampled next action."""
+        if self._expect is not None:
+            # a bootstrap on a non-greedy entry counts as on-policy when act then takes it
+            if self._expect == (int(obs), int(action)):
+                self.sampled_targets += 1
+            self._expect = None
+        row = read_q(self.agent, [obs])[0]
+        top = row.max()
+        greedy = row >= top - 1e-12 * (1.0 + abs(top))
+        self.acts += 1
+        self.share += 1.0 - greedy.sum() / row.size
+        if not greedy[int(action)]:
+            self.non_greedy += 1
+
+    def before_observe(self, transition: tuple) -> None:
+        """Keep the rows (and the baseline) a one-step target of ``transition`` reads."""
+        self._rows = None
+        obs, _, _, next_obs, terminated, truncated, _ = transition
+        if not (terminated or truncated):
+            offset = 0.0 if self.baseline is None else float(self.baseline())
+            self._rows = (read_q(self.agent, [obs])[0], read_q(self.agent, [next_obs])[0],
+                          offset)
+
+    def after_update(self, transition: tuple, errors: tuple) -> None:
+        """Read what the update's target bootstrapped on, if it was one one-step update."""
+        if self._rows is None or len(errors) != 1:
+            return
+        obs, action, reward, next_obs = transition[:4]
+        row, row2, offset = self._rows
+        after = read_q(self.agent, [obs])[0]
+        changed = np.flatnonzero(after != row)
+        if changed.tolist() != [int(action)] or self.gamma == 0:
+            return
+        boot = (row[int(action)] + errors[0] - (float(reward) - offset)) / self.gamma
+        top, low, mean = row2.max(), row2.min(), row2.mean()
+        tol = 1e-9 * (1.0 + float(np.abs(row2).max()) + abs(boot))
+        if abs(boot - top) <= tol:
+            self.greedy_targets += 1
+        elif np.any(np.abs(row2 - boot) <= tol) and low < top:
+            self._expect = (int(next_obs), int(np.flatnonzero(np.abs(row2 - boot) <= tol)[0]))
+        elif low - tol <= boot < top and top - mean > 1e-6:
+            implied = float((top - boot) / (top - mean))
+            if self._implied is not None and abs(implied - self._implied) <= 1e-6:
+                self.expected_targets += 1
+            self._implied = implied
+
+    @property
+    def policy_kind(self) -> str:
+        """``"on-policy"``, ``"off-policy"`` or ``"undetermined"`` (no target read)."""
+        if self.sampled_targets or self.expected_targets:
+            return "on-policy"
+        if self.greedy_targets:
+            return "off-policy"
+        return "undetermined"
+
+    def exploration(self) -> tuple[float, float, float] | None:
+        """(low, estimate, high) of the exploration rate, or None when not measured."""
+        if self.acts == 0 or self.share <= 0:
+            return None
+        n, k, z = self.acts, self.non_greedy, EXPLORATION_Z
+        p = k / n
+        centre = (p + z * z / (2 * n)) / (1 + z * z / n)
+        half = z * np.sqrt(p * (1 - p) / n + z * z / (4 * n * n)) / (1 + z * z / n)
+        per_act = self.share / n
+
+        def clip(x: float) -> float:
+            return float(min(1.0, max(0.0, x / per_act)))
+
+        return clip(centre - half), clip(p), clip(centre + half)
