@@ -124,12 +124,11 @@ def verify_agent(
     _validate("verify_agent", make_agent, level, seed)
     protocol, ctx, agent_name = _prepare(make_agent, level, seed)
     results = [protocol]
-    average = ctx.kind is not None and ctx.kind.average_reward
     for check in CHECKS[1:]:
         name = check_name(check)
         if protocol.failed:
             results.append(CheckResult(name, SKIPPED, "not run: the protocol check failed"))
-        elif average and name in DISCOUNTED_CHECKS:
+        elif _skipped_for_average_reward(ctx, name):
             results.append(CheckResult(name, SKIPPED, _AVERAGE_SKIP))
         else:
             results.append(check(ctx))
@@ -138,6 +137,11 @@ def verify_agent(
         kind=ctx.kind.label if ctx.kind is not None else "",
         factory=_describe_factory(make_agent),
     )
+
+
+def _skipped_for_average_reward(ctx: Context, name: str) -> bool:
+    """True when check ``name`` does not apply because the agent learns an average reward."""
+    return ctx.kind is not None and ctx.kind.average_reward and name in DISCOUNTED_CHECKS
 
 
 def assert_agent(
@@ -173,5 +177,7 @@ def run_check(
         return CheckResult(
             name, SKIPPED, f"not run: the protocol check failed ({protocol.message})"
         )
+    if _skipped_for_average_reward(ctx, name):
+        return CheckResult(name, SKIPPED, _AVERAGE_SKIP)
     check = CHECKS[CHECK_NAMES.index(name)]
     return check(ctx)

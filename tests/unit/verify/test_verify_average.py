@@ -86,3 +86,16 @@ def test_on_policy_differential_sarsa_with_constant_exploration_is_held_to_its_o
     passed, message = check_average_reward(make_q, seed=2)
     assert passed, message
     assert "epsilon-greedy" not in message and "vs exact 2.0000:" in message
+
+
+@pytest.mark.parametrize("name", sorted(DISCOUNTED_CHECKS))
+def test_run_check_skips_a_discounted_check_for_an_average_reward_agent_as_verify_agent_does(
+        name):
+    # The calibration script re-measures single checks with run_check; it must decide
+    # exactly as the full report does (it once ran convergence on differential learners).
+    from tdkit.verify import run_check
+
+    make = _factory(tdkit.DifferentialQLearning)
+    result = run_check(make, name, level="quick", seed=1)
+    assert result.status == "skipped"
+    assert "average-reward agent" in result.message
