@@ -43,10 +43,31 @@ import numpy as np
 
 from ._driver import read_q
 
-__all__ = ["EXPLORATION_Z", "BehaviourReading"]
+__all__ = ["EXPLORATION_Z", "BehaviourReading", "bootstrap_value", "match_tolerance"]
 
 EXPLORATION_Z = 3.29
 """Normal quantile of the exploration-rate interval (two-sided 99.9%)."""
+
+
+def bootstrap_value(q_sa: float, error: float, reward: float, gamma: float,
+                    baseline: float = 0.0) -> float:
+    r"""The bootstrap a one-step target used: :math:`b = (Q(s, a) + \delta - (R - c)) / \gamma`.
+
+    ``q_sa`` is :math:`Q(s, a)` before the update and ``error`` the TD error
+    :math:`\delta` the update returned, so :math:`Q(s, a) + \delta` is the
+    target :math:`R - c + \gamma b`; ``baseline`` is :math:`c` (0, or the
+    average reward of a differential agent).
+    """
+    return (q_sa + error - (reward - baseline)) / gamma
+
+
+def match_tolerance(row: np.ndarray, boot: float) -> float:
+    """How close an entry of ``row`` must be to ``boot`` to count as the one bootstrapped on.
+
+    1e-9 relative to the magnitudes involved: a decode from a TD error is exact
+    up to a few roundings, and distinct values of a learning agent differ by far more.
+    """
+    return 1e-9 * (1.0 + float(np.abs(row).max()) + abs(boot))
 
 
 class BehaviourReading:
@@ -116,9 +137,9 @@ class BehaviourReading:
         changed = np.flatnonzero(after != row)
         if changed.tolist() != [int(action)] or self.gamma == 0:
             return
-        boot = (row[int(action)] + errors[0] - (float(reward) - offset)) / self.gamma
+        boot = bootstrap_value(row[int(action)], errors[0], float(reward), self.gamma, offset)
         top, low, mean = row2.max(), row2.min(), row2.mean()
-        tol = 1e-9 * (1.0 + float(np.abs(row2).max()) + abs(boot))
+        tol = match_tolerance(row2, boot)
         if abs(boot - top) <= tol:
             self.greedy_targets += 1
         elif np.any(np.abs(row2 - boot) <= tol) and low < top:

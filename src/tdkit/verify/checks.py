@@ -83,7 +83,7 @@ from ..dp import evaluate_policy, value_iteration
 from ..envs import problems
 from ..runs import require_update_result
 from ..stats import chi2_sf, student_t_isf
-from ._behaviour import BehaviourReading
+from ._behaviour import BehaviourReading, bootstrap_value, match_tolerance
 from ._driver import (
     AgentFault,
     AgentKind,
@@ -669,9 +669,9 @@ class _NextActionWatcher(Watcher):
             return
         self.readable += 1
         row = self.before[self.states.index(s2)]
-        target = self.before[self.states.index(s), a] + errors[0]
-        boot = (target - float(reward)) / self.gamma
-        tol = 1e-9 * (1.0 + float(np.max(np.abs(row))) + abs(boot))
+        boot = bootstrap_value(self.before[self.states.index(s), a], errors[0], float(reward),
+                               self.gamma)
+        tol = match_tolerance(row, boot)
         hits = np.flatnonzero(np.abs(row - boot) <= tol)
         if hits.size == 0:
             self.undecoded += 1
