@@ -63,6 +63,7 @@ from typing import Any
 
 import numpy as np
 
+from .._errors import InvalidParameterError
 from ..dp_average import policy_gain, relative_value_iteration
 from ..envs.finite import FiniteMDP
 from ..stats import student_t_isf
@@ -95,7 +96,7 @@ AVERAGE_FALSE_ALARM = 1e-5
 """False-alarm rate the margin is built for, per run (see the module notes)."""
 
 T_QUANTILE = student_t_isf(AVERAGE_FALSE_ALARM / 2, N_BATCHES - 1)
-"""Student's t quantile for a two-sided ``AVERAGE_FALSE_ALARM``, 19 degrees of freedom (6.4)."""
+"""Student's t quantile for a two-sided ``AVERAGE_FALSE_ALARM``, 19 degrees of freedom (5.95)."""
 
 FLOOR = 0.05
 """Allowance for constant-step-size bias: 2.5% of the probe's optimal gain 2."""
@@ -192,17 +193,24 @@ def best_epsilon_greedy_gain(mdp: FiniteMDP, epsilon: float) -> float:
     + \varepsilon / A` and every other with :math:`\varepsilon / A`; its gain
     is exact (:func:`tdkit.policy_gain`). Every deterministic greedy choice is
     tried, so this suits the verifier's small probes only (at most 4,096
-    candidates).
+    candidates). Candidates without a single gain (multichain, possible only
+    at epsilon = 0) are passed over.
     """
     n, m = mdp.n_states, mdp.n_actions
     if m ** n > 4096:
-        raise ValueError(f"best_epsilon_greedy_gain enumerates {m}^{n} policies: too many")
+        raise InvalidParameterError(
+            f"best_epsilon_greedy_gain: {m}^{n} candidate policies ({n} states, {m} actions) "
+            "are too many to enumerate; use it on probes of at most 4,096 deterministic policies."
+        )
     best = -np.inf
     rows = np.arange(n)
     for choice in itertools.product(range(m), repeat=n):
         probs = np.full((n, m), epsilon / m)
         probs[rows, list(choice)] += 1.0 - epsilon
-        best = max(best, policy_gain(mdp, probs))
+        try:
+            best = max(best, policy_gain(mdp, probs))
+        except InvalidParameterError:  # multichain: no single gain to compare
+            continue
     return float(best)
 
 

@@ -99,3 +99,11 @@ def test_run_check_skips_a_discounted_check_for_an_average_reward_agent_as_verif
     result = run_check(make, name, level="quick", seed=1)
     assert result.status == "skipped"
     assert "average-reward agent" in result.message
+
+
+def test_best_epsilon_greedy_gain_refuses_a_model_too_large_to_enumerate():
+    from tdkit import InvalidParameterError
+    from tdkit.envs import problems
+
+    with pytest.raises(InvalidParameterError, match="too many to enumerate"):
+        best_epsilon_greedy_gain(problems.gridworld_4x4(), 0.1)
