@@ -224,7 +224,8 @@ def summarize(records: list[dict]) -> str:
         lines.append("| level | check | failed / runs | upper bound |")
         lines.append("|---|---|---|---|")
         for (level, c), (k, n) in sorted(total.items()):
-            lines.append(f"| {level} | {c} | {k}/{n} | {upper_bound(k, n):.4f} |")
+            if n:  # a check that ran nowhere at this level (skipped everywhere) has no row
+                lines.append(f"| {level} | {c} | {k}/{n} | {upper_bound(k, n):.4f} |")
     commits = sorted({c for r in records for c in r.get("commit", "unknown").split("+")})
     lines.append("")
     lines.append(f"{len(records)} records; source commit(s): {', '.join(commits)}")
