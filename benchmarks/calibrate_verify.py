@@ -14,6 +14,7 @@ Usage::
     python benchmarks/calibrate_verify.py --learners QLearning,Sarsa --seeds 1-20
     python benchmarks/calibrate_verify.py --mutants-only --seeds 1-50 --named-check-only
     python benchmarks/calibrate_verify.py --checks next_action,convergence --mutants none
+    python benchmarks/calibrate_verify.py --seeds 1-300 --out quick.jsonl --resume   # go on
     python benchmarks/calibrate_verify.py --shard 0/4 --out part0.jsonl   # a quarter
     python benchmarks/calibrate_verify.py --summarize part*.jsonl         # the table
     python benchmarks/calibrate_verify.py --smoke                         # seconds
@@ -129,6 +130,36 @@ def run_one(job: tuple[str, str, str, int]) -> dict:
         "checks": {c.name: c.status for c in report},
         "messages": {c.name: c.message for c in report if c.failed},
     }
+
+
+def pending_jobs(jobs: list[tuple], out: pathlib.Path) -> list[tuple]:
+    """The jobs whose runs ``out`` does not hold yet (for ``--resume``).
+
+    A job that names its checks is done when a record of the same learner,
+    settings, level and seed holds every one of them; a complete report is
+    done when a record holds every check of the verifier. A last line cut
+    short by a stopped run is ignored (and rewritten by the run).
+    """
+    from tdkit.verify import CHECK_NAMES
+
+    held: dict[tuple, set[str]] = defaultdict(set)
+    for line in out.read_text().splitlines():
+        try:
+            r = json.loads(line)
+        except json.JSONDecodeError:
+            continue
+        held[(r["learner"], r["variant"], r["level"], r["seed"])].update(r["checks"])
+    return [job for job in jobs
+            if not set(job[4] if len(job) > 4 else CHECK_NAMES) <= held[tuple(job[:4])]]
+
+
+def drop_cut_line(out: pathlib.Path) -> None:
+    """Remove a last line that a stopped run left without its newline (appends start clean)."""
+    if not out.exists():
+        return
+    data = out.read_bytes()
+    if data and not data.endswith(b"\n"):
+        out.write_bytes(data[: data.rfind(b"\n") + 1])
 
 
 def parse_seeds(text: str) -> list[int]:
@@ -261,6 +292,8 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--checks", default=None,
                         help="comma-separated check names: run only these on the correct "
                              "learners (to re-measure checks changed since earlier records)")
+    parser.add_argument("--resume", action="store_true",
+                        help="with --out: leave out the runs the file already holds")
     parser.add_argument("--jobs", type=int, default=1)
     parser.add_argument("--shard", default="0/1", help="i/n: run every n-th job from i")
     parser.add_argument("--out", default=None, help="append one JSON line per run")
@@ -299,7 +332,13 @@ def main(argv: list[str] | None = None) -> int:
              for s in seeds for m in mutants]
     index, count = (int(x) for x in args.shard.split("/"))
     jobs = jobs[index::count]
+    if args.resume and args.out and pathlib.Path(args.out).exists():
+        before = len(jobs)
+        jobs = pending_jobs(jobs, pathlib.Path(args.out))
+        print(f"--resume: {before - len(jobs)} of {before} runs already in {args.out}")
     records = []
+    if args.out:
+        drop_cut_line(pathlib.Path(args.out))
     out = open(args.out, "a") if args.out else None
     started = time.perf_counter()
     try:

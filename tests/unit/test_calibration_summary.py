@@ -68,3 +68,30 @@ def test_drop_and_merge_from_the_command_line(calibrate, tmp_path, capsys):
     assert "| quick | terminal | 0/3 |" in text
     assert "| quick | QLearning | defaults | 2-3 | 0 | - |" in text.replace(
         "defaults = recommended", "defaults")
+
+
+def test_resume_leaves_out_the_runs_the_file_holds(calibrate, tmp_path):
+    from tdkit.verify import CHECK_NAMES
+
+    out = tmp_path / "runs.jsonl"
+    complete = _record(1, {name: "passed" for name in CHECK_NAMES})
+    partial = _record(2, {"convergence": "passed"})
+    out.write_text(json.dumps(complete) + "\n" + json.dumps(partial) + "\n"
+                   + '{"learner": "QLearning", "vari')  # a line cut short by a stopped run
+    jobs = [("QLearning", "defaults", "quick", s) for s in (1, 2, 3)]
+    # complete reports: seed 1 is done; seed 2 holds one check only; seed 3 is new
+    assert calibrate.pending_jobs(jobs, out) == jobs[1:]
+    named = [(*job, ("convergence",)) for job in jobs]
+    assert calibrate.pending_jobs(named, out) == named[2:]
+    both = [(*job, ("convergence", "next_action")) for job in jobs]
+    assert calibrate.pending_jobs(both, out) == both[1:]
+
+
+def test_a_line_cut_short_is_removed_before_appending(calibrate, tmp_path):
+    out = tmp_path / "runs.jsonl"
+    whole = json.dumps(_record(1, {"terminal": "passed"})) + "\n"
+    out.write_text(whole + '{"learner": "QLe')
+    calibrate.drop_cut_line(out)
+    assert out.read_text() == whole
+    calibrate.drop_cut_line(out)  # a clean file is left as it is
+    assert out.read_text() == whole
