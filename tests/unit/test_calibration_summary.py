@@ -95,3 +95,21 @@ def test_a_line_cut_short_is_removed_before_appending(calibrate, tmp_path):
     assert out.read_text() == whole
     calibrate.drop_cut_line(out)  # a clean file is left as it is
     assert out.read_text() == whole
+
+
+def test_seeds_with_a_step(calibrate):
+    assert calibrate.parse_seeds("1-10:3") == [1, 4, 7, 10]
+    assert calibrate.parse_seeds("1-3,8") == [1, 2, 3, 8]
+
+
+def test_full_reports_that_share_seeds_are_counted_once(calibrate):
+    # A full report at seed s runs seeds s, s + 1, s + 2: reports at 1 and 4 are disjoint,
+    # those at 2 and 3 repeat runs of the report at 1 (and of 4).
+    full = [dict(_record(s, {"convergence": "passed"}), level="full") for s in (1, 2, 3, 4)]
+    quick = [_record(s, {"convergence": "passed"}) for s in (1, 2, 3)]
+    kept, left_out = calibrate.independent_reports(full + quick)
+    assert sorted((r["level"], r["seed"]) for r in kept) == [
+        ("full", 1), ("full", 4), ("quick", 1), ("quick", 2), ("quick", 3)]
+    assert left_out == 2
+    text = calibrate.summarize(full)
+    assert "| full | convergence | 0/2 |" in text and "2 full reports left out" in text
