@@ -282,7 +282,9 @@ def epsilon_greedy_index_rows(
     explore = u < epsilon
     if not explore.any():
         return greedy
-    uniform = _uniform_index_rows(mask, rows.shape[1], u / epsilon)
+    # Rows that do not explore divide 0 instead of their u: u / epsilon can exceed any
+    # integer there (a tiny epsilon), and its cast would warn about a number never used.
+    uniform = _uniform_index_rows(mask, rows.shape[1], np.where(explore, u, 0.0) / epsilon)
     return np.where(explore, uniform, greedy)
 
 

@@ -12,6 +12,8 @@
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 import pytest
 from hypothesis import given
@@ -210,3 +212,16 @@ def test_mask_restricts_every_quantity_to_allowed_actions():
     assert T.epsilon_greedy_index([1.0, 2.0, 2.0], range(3), 0.5, 0.7) == 1  # (0.7-.5)/.5 = .4
     assert T.epsilon_greedy_index([1.0, 2.0, 2.0], range(3), 0.5, 0.8) == 2  # .6 -> tie 1
     assert T.double_coin(0.25) == (0, 0.5) and T.double_coin(0.75) == (1, 0.5)
+
+
+def test_a_tiny_epsilon_raises_no_warning_for_rows_that_do_not_explore():
+    # u / epsilon of a row that does not explore is never used; with epsilon = 1e-300 it
+    # exceeded every integer and its cast warned (hypothesis found it).
+    rows = np.array([[0.0, 1.0, 0.5], [2.0, 0.0, 0.0], [0.0, 0.0, 0.0]])
+    u = np.array([0.5, 1e-310, 0.9])
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        got = T.epsilon_greedy_index_rows(rows, None, 1e-300, u)
+    want = [T.epsilon_greedy_index(row.tolist(), range(3), 1e-300, x)
+            for row, x in zip(rows, u, strict=True)]
+    assert got.tolist() == want
