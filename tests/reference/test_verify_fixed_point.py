@@ -14,18 +14,10 @@ import numpy as np
 import tdkit
 from tdkit.dp import value_iteration
 from tdkit.envs.problems import garnet
-from tdkit.stats import student_t_sf
+from tdkit.stats import student_t_isf
 
 EPSILON = 0.4
 READS = 30
-
-
-def _t_quantile(two_sided: float, df: int) -> float:
-    low, high = 0.0, 100.0
-    for _ in range(100):
-        mid = (low + high) / 2
-        low, high = (mid, high) if 2 * student_t_sf(mid, df) > two_sided else (low, mid)
-    return high
 
 
 def test_expected_sarsa_with_constant_epsilon_converges_to_the_epsilon_greedy_fixed_point():
@@ -50,7 +42,7 @@ def test_expected_sarsa_with_constant_epsilon_converges_to_the_epsilon_greedy_fi
     # Margin: Student-t quantile for a two-sided error of 1e-4 over the 12 entries
     # (Bonferroni), times each entry's standard error. Time-limit truncations bootstrap,
     # so max_episode_steps does not move the fixed point.
-    t = _t_quantile(1e-4 / mean.size, READS - 1)
+    t = student_t_isf(1e-4 / mean.size / 2, READS - 1)  # two-sided 1e-4 / m
     margin = t * se
     q_eps = value_iteration(mdp, exploration=EPSILON, tol=1e-12).q
     q_star = value_iteration(mdp, tol=1e-12).q

@@ -295,7 +295,8 @@ def check_average_reward(
     try:
         agent = build_agent(make_agent, env, seed)
         obs, _ = env.reset(seed=seed)
-        prediction = agent_kind(agent, obs).prediction
+        kind = agent_kind(agent, obs)
+        prediction = kind.prediction
         if prediction:
             env = average_probe(prediction=True).to_env(PROBE_TIME_LIMIT)
             agent = build_agent(make_agent, env, seed)
@@ -304,7 +305,7 @@ def check_average_reward(
                 f"{type(agent).__name__} has no average_reward attribute: the average-reward "
                 "check needs the agent's estimate of the gain there"
             )
-        readings = _Readings(agent, agent_kind(agent, obs).q_values and not prediction)
+        readings = _Readings(agent, kind.q_values and not prediction)
         run_episodes(agent, env, episodes=PROBE_EPISODES, seed=seed, watcher=readings)
     except AgentFault as fault:
         return False, f"{fault} (seed {seed}); {reproduce(prediction)}"
