@@ -14,6 +14,7 @@ from typing import Any
 import numpy as np
 
 from .._errors import InvalidParameterError
+from .._seeding import spawned_seed
 
 __all__ = ["RunSeed", "episode_seed", "root_sequence"]
 
@@ -67,7 +68,10 @@ def episode_seed(root: np.random.SeedSequence, episode: int) -> int:
     """The environment seed of episode ``episode`` of a run seeded by ``root``.
 
     A pure function of the root entropy and the episode index, so a resumed run
-    draws the same seeds as an uninterrupted one.
+    draws the same seeds as an uninterrupted one: the first 32-bit word of
+    ``SeedSequence(root.entropy, spawn_key=(*root.spawn_key, episode))``,
+    computed by :func:`tdkit._seeding.spawned_seed` (numpy's values, without
+    building the object every episode).
 
     Examples
     --------
@@ -75,5 +79,4 @@ def episode_seed(root: np.random.SeedSequence, episode: int) -> int:
     >>> episode_seed(root, 4) == episode_seed(np.random.SeedSequence(0), 4)
     True
     """
-    child = np.random.SeedSequence(root.entropy, spawn_key=(*root.spawn_key, episode))
-    return int(child.generate_state(1, dtype=np.uint32)[0])
+    return spawned_seed(root.entropy, root.spawn_key, episode)
