@@ -41,7 +41,7 @@ from typing import Any
 
 import numpy as np
 
-from ._driver import read_q
+from ._driver import read_row
 
 __all__ = ["EXPLORATION_Z", "BehaviourReading", "bootstrap_value", "match_tolerance"]
 
@@ -110,7 +110,7 @@ class BehaviourReading:
             if self._expect == (int(obs), int(action)):
                 self.sampled_targets += 1
             self._expect = None
-        row = read_q(self.agent, [obs])[0]
+        row = read_row(self.agent, obs)
         top = row.max()
         greedy = row >= top - 1e-12 * (1.0 + abs(top))
         self.acts += 1
@@ -124,7 +124,7 @@ class BehaviourReading:
         obs, _, _, next_obs, terminated, truncated, _ = transition
         if not (terminated or truncated):
             offset = 0.0 if self.baseline is None else float(self.baseline())
-            self._rows = (read_q(self.agent, [obs])[0], read_q(self.agent, [next_obs])[0],
+            self._rows = (read_row(self.agent, obs), read_row(self.agent, next_obs),
                           offset)
 
     def after_update(self, transition: tuple, errors: tuple) -> None:
@@ -133,7 +133,7 @@ class BehaviourReading:
             return
         obs, action, reward, next_obs = transition[:4]
         row, row2, offset = self._rows
-        after = read_q(self.agent, [obs])[0]
+        after = read_row(self.agent, obs)
         changed = np.flatnonzero(after != row)
         if changed.tolist() != [int(action)] or self.gamma == 0:
             return

@@ -99,14 +99,17 @@ def build_agent(make_agent: Callable[[Any, int], Any], env: Any, seed: int) -> A
     return agent
 
 
+def read_row(agent: Any, state: Any, where: str | None = None) -> np.ndarray:
+    """``q_values(state)`` as a new 1-D float array (a copy: later updates leave it as read)."""
+    try:
+        return np.array(agent.q_values(state), dtype=np.float64).reshape(-1)
+    except Exception as exc:
+        raise AgentFault(f"q_values({state!r}) raised {describe_exception(exc)}", where) from exc
+
+
 def read_q(agent: Any, states: Sequence[int], where: str | None = None) -> np.ndarray:
     """``q_values(s)`` for each state, as a float array ``(len(states), A)``."""
-    rows = []
-    for s in states:
-        try:
-            rows.append(np.asarray(agent.q_values(s), dtype=np.float64).reshape(-1))
-        except Exception as exc:
-            raise AgentFault(f"q_values({s!r}) raised {describe_exception(exc)}", where) from exc
+    rows = [read_row(agent, s, where) for s in states]
     if len({r.shape for r in rows}) > 1:
         raise AgentFault(f"q_values returned rows of different lengths for states {states}", where)
     return np.array(rows)

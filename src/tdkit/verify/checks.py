@@ -92,6 +92,7 @@ from ._driver import (
     build_agent,
     fmt,
     read_q,
+    read_row,
     read_v,
     run_episodes,
     where,
@@ -399,7 +400,7 @@ def check_protocol(ctx: Context) -> CheckResult:
         kind = agent_kind(agent, obs)
         notes = []
         if kind.q_values:
-            row = read_q(agent, [obs])[0]
+            row = read_row(agent, obs)
             if row.shape != (env.action_space.n,) or not np.isfinite(row).all():
                 return _result(
                     name, FAILED,
