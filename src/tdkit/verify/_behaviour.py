@@ -36,7 +36,8 @@ things from the protocol alone, with :class:`BehaviourReading`:
 
 from __future__ import annotations
 
-from collections.abc import Callable
+import math
+from collections.abc import Callable, Sequence
 from typing import Any
 
 import numpy as np
@@ -61,13 +62,23 @@ def bootstrap_value(q_sa: float, error: float, reward: float, gamma: float,
     return (q_sa + error - (reward - baseline)) / gamma
 
 
-def match_tolerance(row: np.ndarray, boot: float) -> float:
+def match_tolerance(row: Sequence[float], boot: float) -> float:
     """How close an entry of ``row`` must be to ``boot`` to count as the one bootstrapped on.
 
     1e-9 relative to the magnitudes involved: a decode from a TD error is exact
     up to a few roundings, and distinct values of a learning agent differ by far more.
+    NaN when ``row`` holds a NaN (as numpy's ``max`` gives it), so nothing matches.
     """
-    return 1e-9 * (1.0 + float(np.abs(row).max()) + abs(boot))
+    return 1e-9 * (1.0 + _largest_magnitude(row) + abs(boot))
+
+
+def _has_nan(row: Sequence[float]) -> bool:
+    return any(v != v for v in row)
+
+
+def _largest_magnitude(row: Sequence[float]) -> float:
+    """``float(np.abs(row).max())`` for a short row, without numpy: NaN if any entry is NaN."""
+    return math.nan if _has_nan(row) else float(max(map(abs, row)))
 
 
 class BehaviourReading:
@@ -103,6 +114,11 @@ class BehaviourReading:
         self._rows: tuple[np.ndarray, np.ndarray, float] | None = None
         self._expect: tuple[int, int] | None = None
 
+    # The rows are read as lists of Python floats: the per-step reading costs a few
+    # list operations instead of a dozen numpy calls on a 4-entry array, with the
+    # same numbers (the same IEEE operations; numpy's NaN rules kept where they
+    # matter, and the one mean still taken by numpy).
+
     def after_act(self, obs: Any, action: Any) -> None:
         """Count a greedy or non-greedy action; confirm a sampled next action."""
         if self._expect is not None:
@@ -110,12 +126,12 @@ class BehaviourReading:
             if self._expect == (int(obs), int(action)):
                 self.sampled_targets += 1
             self._expect = None
-        row = read_row(self.agent, obs)
-        top = row.max()
-        greedy = row >= top - 1e-12 * (1.0 + abs(top))
+        row = read_row(self.agent, obs).tolist()
+        top = math.nan if _has_nan(row) else max(row)
+        cut = top - 1e-12 * (1.0 + abs(top))  # NaN (nothing greedy) when top is NaN or inf
         self.acts += 1
-        self.share += 1.0 - greedy.sum() / row.size
-        if not greedy[int(action)]:
+        self.share += 1.0 - sum(v >= cut for v in row) / len(row)
+        if not row[int(action)] >= cut:
             self.non_greedy += 1
 
     def before_observe(self, transition: tuple) -> None:
@@ -124,8 +140,8 @@ class BehaviourReading:
         obs, _, _, next_obs, terminated, truncated, _ = transition
         if not (terminated or truncated):
             offset = 0.0 if self.baseline is None else float(self.baseline())
-            self._rows = (read_row(self.agent, obs), read_row(self.agent, next_obs),
-                          offset)
+            self._rows = (read_row(self.agent, obs).tolist(),
+                          read_row(self.agent, next_obs).tolist(), offset)
 
     def after_update(self, transition: tuple, errors: tuple) -> None:
         """Read what the update's target bootstrapped on, if it was one one-step update."""
@@ -133,19 +149,25 @@ class BehaviourReading:
             return
         obs, action, reward, next_obs = transition[:4]
         row, row2, offset = self._rows
-        after = read_row(self.agent, obs)
-        changed = np.flatnonzero(after != row)
-        if changed.tolist() != [int(action)] or self.gamma == 0:
+        after = read_row(self.agent, obs).tolist()
+        a = int(action)
+        if len(after) != len(row):  # a row that changed length says nothing about a target
             return
-        boot = bootstrap_value(row[int(action)], errors[0], float(reward), self.gamma, offset)
-        top, low, mean = row2.max(), row2.min(), row2.mean()
+        changed = [i for i, (new, old) in enumerate(zip(after, row, strict=True)) if new != old]
+        if changed != [a] or self.gamma == 0:
+            return
+        boot = bootstrap_value(row[a], errors[0], float(reward), self.gamma, offset)
         tol = match_tolerance(row2, boot)
+        if tol != tol:  # a NaN in the row or the bootstrap: nothing can be read
+            return
+        top, low = max(row2), min(row2)
+        near = [i for i, v in enumerate(row2) if abs(v - boot) <= tol]
         if abs(boot - top) <= tol:
             self.greedy_targets += 1
-        elif np.any(np.abs(row2 - boot) <= tol) and low < top:
-            self._expect = (int(next_obs), int(np.flatnonzero(np.abs(row2 - boot) <= tol)[0]))
-        elif low - tol <= boot < top and top - mean > 1e-6:
-            implied = float((top - boot) / (top - mean))
+        elif near and low < top:
+            self._expect = (int(next_obs), near[0])
+        elif low - tol <= boot < top and top - float(np.mean(row2)) > 1e-6:
+            implied = float((top - boot) / (top - float(np.mean(row2))))
             if self._implied is not None and abs(implied - self._implied) <= 1e-6:
                 self.expected_targets += 1
             self._implied = implied
