@@ -73,16 +73,26 @@ def _uint32_words(value: int) -> list[int]:
     return words
 
 
+def _hashmix(value: int, hash_const: int) -> tuple[int, int]:
+    """numpy's ``hashmix``: the hashed word and the next hash constant."""
+    value ^= hash_const
+    hash_const = (hash_const * _MULT_A) & _M32
+    value = (value * hash_const) & _M32
+    return value ^ (value >> 16), hash_const
+
+
+def _mix(x: int, y: int) -> int:
+    """numpy's ``mix`` of a pool word ``x`` with a hashed word ``y``."""
+    mixed = (_MIX_L * x - _MIX_R * y) & _M32
+    return mixed ^ (mixed >> 16)
+
+
 def _mix_words(pool: list[int], hash_const: int, words: list[int]) -> int:
     """Mix ``words`` into a full ``pool`` (in place); return the new hash constant."""
     for word in words:
         for i in range(_POOL):
-            value = word ^ hash_const
-            hash_const = (hash_const * _MULT_A) & _M32
-            value = (value * hash_const) & _M32
-            value ^= value >> 16
-            mixed = (_MIX_L * pool[i] - _MIX_R * value) & _M32
-            pool[i] = mixed ^ (mixed >> 16)
+            hashed, hash_const = _hashmix(word, hash_const)
+            pool[i] = _mix(pool[i], hashed)
     return hash_const
 
 
@@ -94,19 +104,13 @@ def _spawn_prefix(entropy: int, spawn_key: tuple[int, ...]) -> tuple[tuple[int, 
     hash_const = _INIT_A
     pool = []
     for word in run[:_POOL]:
-        value = word ^ hash_const
-        hash_const = (hash_const * _MULT_A) & _M32
-        value = (value * hash_const) & _M32
-        pool.append(value ^ (value >> 16))
+        hashed, hash_const = _hashmix(word, hash_const)
+        pool.append(hashed)
     for src in range(_POOL):
         for dst in range(_POOL):
             if src != dst:
-                value = pool[src] ^ hash_const
-                hash_const = (hash_const * _MULT_A) & _M32
-                value = (value * hash_const) & _M32
-                value ^= value >> 16
-                mixed = (_MIX_L * pool[dst] - _MIX_R * value) & _M32
-                pool[dst] = mixed ^ (mixed >> 16)
+                hashed, hash_const = _hashmix(pool[src], hash_const)
+                pool[dst] = _mix(pool[dst], hashed)
     rest = run[_POOL:] + [w for k in spawn_key for w in _uint32_words(k)]
     hash_const = _mix_words(pool, hash_const, rest)
     return tuple(pool), hash_const
@@ -118,10 +122,7 @@ _FIRST_OUTPUT_MULT = (_INIT_B * _MULT_B) & _M32
 def _spawned_seed_port(entropy: int, spawn_key: tuple[int, ...], key: int) -> int:
     pool, hash_const = _spawn_prefix(entropy, spawn_key)
     if key <= _M32:  # one key word: only the first pool word reaches the output
-        first = pool[0]
-        value = (key ^ hash_const) * ((hash_const * _MULT_A) & _M32) & _M32
-        mixed = (_MIX_L * first - _MIX_R * (value ^ (value >> 16))) & _M32
-        first = mixed ^ (mixed >> 16)
+        first = _mix(pool[0], _hashmix(key, hash_const)[0])
     else:
         words = list(pool)
         _mix_words(words, hash_const, _uint32_words(key))
