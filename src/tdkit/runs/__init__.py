@@ -4,7 +4,14 @@ Everything that runs episodes (``tdkit.train``, ``tdkit.evaluate``, the
 verifier, comparisons and sweeps) goes through :func:`run_episode`.
 """
 
-from .episode import EndlessEpisodeWarning, EpisodeHooks, EpisodeResult, info_mask, run_episode
+from .episode import (
+    EndlessEpisodeWarning,
+    EpisodeHooks,
+    EpisodeResult,
+    MaskReader,
+    info_mask,
+    run_episode,
+)
 from .faults import (
     AgentFault,
     check_update_result,
@@ -27,6 +34,7 @@ __all__ = [
     "checked_calls",
     "describe_exception",
     "require_update_result",
+    "MaskReader",
     "episode_seed",
     "info_mask",
     "root_sequence",

@@ -34,8 +34,8 @@ from .._errors import EnvironmentProtocolError
 from .faults import AgentFault, checked_calls
 
 __all__ = [
-    "EndlessEpisodeWarning", "EpisodeHooks", "EpisodeResult", "bad_reward", "info_mask",
-    "run_episode",
+    "EndlessEpisodeWarning", "EpisodeHooks", "EpisodeResult", "MaskReader", "bad_reward",
+    "info_mask", "run_episode",
 ]
 
 _INF = math.inf
@@ -113,6 +113,56 @@ def info_mask(info: dict[str, Any] | None) -> np.ndarray | None:
     return arr  # let the agent's own check report anything stranger
 
 
+_BOOL = np.dtype(np.bool_)
+
+
+class MaskReader:
+    """:func:`info_mask` for a run: each distinct integer mask is converted once.
+
+    gymnasium's Taxi hands a new int8 ``action_mask`` every step;
+    :func:`info_mask` turns it into a new boolean array (about 2 µs). A
+    reader keeps the boolean form of each 1-D integer mask it has seen, keyed
+    by its dtype and bytes, and hands that same read-only array out again
+    (one ``tobytes`` and one look-up). Boolean numpy masks pass through as
+    they are, and anything else goes to :func:`info_mask`, so the values are
+    always those of :func:`info_mask`. At most ``limit`` masks are kept.
+
+    Examples
+    --------
+    >>> read = MaskReader()
+    >>> first = read({"action_mask": np.array([1, 0, 1], dtype=np.int8)})
+    >>> first.tolist(), first.flags.writeable
+    ([True, False, True], False)
+    >>> read({"action_mask": np.array([1, 0, 1], dtype=np.int8)}) is first
+    True
+    """
+
+    __slots__ = ("_by_bytes", "limit")
+
+    def __init__(self, limit: int = 4096) -> None:
+        self.limit = limit
+        self._by_bytes: dict[bytes, tuple[np.dtype, np.ndarray]] = {}
+
+    def __call__(self, info: Any) -> np.ndarray | None:
+        """The mask of ``info`` as :func:`info_mask` gives it (None without one)."""
+        if not info:
+            return None
+        mask = info.get("action_mask")
+        if type(mask) is not np.ndarray or mask.dtype is _BOOL or mask.ndim != 1:
+            return info_mask(info)
+        key = mask.tobytes()
+        hit = self._by_bytes.get(key)
+        if hit is not None and hit[0] is mask.dtype:
+            return hit[1]
+        converted = info_mask(info)
+        if type(converted) is np.ndarray and converted.dtype is _BOOL:
+            converted.flags.writeable = False
+            if len(self._by_bytes) >= self.limit:
+                self._by_bytes.clear()
+            self._by_bytes[key] = (mask.dtype, converted)
+        return converted
+
+
 def bad_reward(reward: Any, step: int) -> EnvironmentProtocolError:
     """The error for a reward that is not a finite number (the driver and vector training)."""
     return EnvironmentProtocolError(
@@ -134,6 +184,7 @@ def run_episode(
     checked: bool = False,
     warn_after: int | None = None,
     episode_index: int = 0,
+    read_mask: MaskReader | None = None,
 ) -> EpisodeResult:
     """Run one episode of ``agent`` on the adapted environment ``env``.
 
@@ -168,6 +219,9 @@ def run_episode(
         many steps without ending.
     episode_index : int
         Named in warnings and faults.
+    read_mask : MaskReader, optional
+        Reads the masks (a run passes one reader to all its episodes, so each
+        distinct mask is converted once per run); a new one by default.
 
     Returns
     -------
@@ -200,7 +254,9 @@ def run_episode(
     settled = not learn  # a greedy run has nothing to settle
     try:
         obs, info = env.reset(seed=env_seed)
-        mask = info_mask(info) if use_action_masks else None
+        if read_mask is None:
+            read_mask = MaskReader()
+        mask = read_mask(info) if use_action_masks else None
         while True:
             action = act(obs, mask=mask, explore=learn)
             if hooks is not None:
@@ -211,7 +267,7 @@ def run_episode(
                 raise bad_reward(reward, length)
             if length == limit:
                 truncated = True
-            next_mask = info_mask(info) if use_action_masks else None
+            next_mask = read_mask(info) if use_action_masks else None
             if learn:
                 if hooks is not None:
                     hooks.before_observe(

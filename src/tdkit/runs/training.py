@@ -23,7 +23,7 @@ from .._errors import InvalidParameterError
 from .._progress import progress_bar
 from .._validation import require_positive_int
 from ..envs import adapt
-from .episode import run_episode
+from .episode import MaskReader, run_episode
 from .fit import require_agent_fits
 from .history import History
 from .seeds import episode_seed, root_sequence
@@ -162,6 +162,7 @@ def train(
                        unit="step" if by_steps else "episode")
     warn_after = _ENDLESS_STEPS if (not by_steps and max_episode_steps is None) else None
     end = "terminated"  # how the last episode ended
+    read_mask = MaskReader()  # each distinct mask converted once per run
     started = time.perf_counter()
     try:
         while (episodes is None or episode < episodes) and (steps is None or total < steps):
@@ -170,7 +171,7 @@ def train(
                 max_episode_steps=max_episode_steps,
                 step_budget=None if steps is None else steps - total,
                 use_action_masks=use_action_masks, warn_after=warn_after,
-                episode_index=episode,
+                episode_index=episode, read_mask=read_mask,
             )
             if warn_after is not None and result.length >= warn_after:
                 warn_after = None  # warn once per run
@@ -317,11 +318,12 @@ def evaluate(
     root = root_sequence(seed, owner="evaluate")
     returns = np.empty(episodes)
     warn_after = _ENDLESS_STEPS if max_episode_steps is None else None
+    read_mask = MaskReader()
     for episode in range(episodes):
         result = run_episode(
             agent, env, env_seed=episode_seed(root, episode), learn=False,
             max_episode_steps=max_episode_steps, use_action_masks=use_action_masks,
-            warn_after=warn_after, episode_index=episode,
+            warn_after=warn_after, episode_index=episode, read_mask=read_mask,
         )
         if warn_after is not None and result.length >= warn_after:
             warn_after = None

@@ -19,6 +19,7 @@ import numpy as np
 from ..runs import (
     AgentFault,
     EpisodeHooks,
+    MaskReader,
     describe_exception,
     episode_seed,
     root_sequence,
@@ -205,11 +206,12 @@ def run_episodes(
     root = root_sequence(seed, owner="run_episodes")
     budget = max_steps if cut_after is None else cut_after
     trace = RunTrace()
+    read_mask = MaskReader()  # as train reads masks: once per distinct mask and run
     for episode in range(episodes):
         result = run_episode(
             agent, env, env_seed=episode_seed(root, episode), checked=True,
             hooks=_Tap(watch, trace, episode), max_episode_steps=max_episode_steps,
-            step_budget=budget, episode_index=episode,
+            step_budget=budget, episode_index=episode, read_mask=read_mask,
         )
         if result.end == "unfinished" and cut_after is None:
             raise AgentFault(

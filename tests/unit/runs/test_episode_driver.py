@@ -12,10 +12,20 @@ import warnings
 import gymnasium as gym
 import numpy as np
 import pytest
+from hypothesis import given
+from hypothesis import strategies as st
 
 import tdkit
 from tdkit.envs import adapt
-from tdkit.runs import EndlessEpisodeWarning, episode_seed, root_sequence, run_episode
+from tdkit.runs import (
+    EndlessEpisodeWarning,
+    MaskReader,
+    episode_seed,
+    info_mask,
+    root_sequence,
+    run_episode,
+)
+from tdkit.runs import episode as episode_module
 from tdkit.runs import training as loop
 
 
@@ -269,3 +279,52 @@ def test_update_results_are_validated_and_the_old_name_warns():
         require_update_result((0.1, "x"))
     with pytest.warns(FutureWarning, match=r"0\.3\.0.*require_update_result"):
         assert check_update_result(np.array([2.0])) == (2.0,)
+
+
+# ------------------------------------------------------------------ masks read once per run
+_mask_values = st.lists(st.integers(0, 1), min_size=1, max_size=6)
+_mask_dtypes = st.sampled_from(["int8", "uint8", "int16", "int64", "bool", "float64"])
+
+
+@given(st.lists(st.tuples(_mask_values, _mask_dtypes, st.booleans()), max_size=30),
+       st.integers(1, 4))
+def test_the_mask_reader_gives_what_info_mask_gives(masks, limit):
+    # Same values and dtype as info_mask for every mask of a run (repeats, other dtypes with
+    # the same bytes, non-arrays, a cache emptied when full); kept masks are read-only.
+    read = MaskReader(limit=limit)
+    for values, dtype, as_list in masks:
+        mask = values if as_list else np.array(values, dtype=dtype)
+        info = {"action_mask": mask}
+        got, want = read(info), info_mask(info)
+        assert type(got) is type(want)
+        np.testing.assert_array_equal(got, want)
+        assert got.dtype == want.dtype
+        if not as_list and dtype.startswith(("int", "uint")):
+            # kept for later steps: nobody may change what they will receive
+            assert not got.flags.writeable
+    assert read({}) is None and read(None) is None and read({"other": 1}) is None
+
+
+def test_the_mask_reader_converts_each_distinct_mask_once():
+    read = MaskReader()
+    first = read({"action_mask": np.array([1, 0, 1], dtype=np.int8)})
+    assert read({"action_mask": np.array([1, 0, 1], dtype=np.int8)}) is first
+    # the same bytes under another dtype are another mask
+    other = read({"action_mask": np.array([1, 0, 1], dtype=np.uint8)})
+    assert other is not first and other.tolist() == first.tolist()
+    boolean = np.array([True, False, True])
+    assert read({"action_mask": boolean}) is boolean  # passed on as the environment gave it
+
+
+def test_train_with_taxi_masks_equals_train_reading_each_mask_anew(monkeypatch):
+    # The reader changes how often a mask is converted, not what the agent sees.
+    def run():
+        env = gym.make("Taxi-v4" if "Taxi-v4" in gym.registry else "Taxi-v3")
+        agent = tdkit.QLearning.for_env(env, seed=3)
+        tdkit.train(agent, env, steps=3_000, seed=3)
+        return agent.table.copy()
+
+    cached = run()
+    monkeypatch.setattr(episode_module.MaskReader, "__call__",
+                        lambda self, info: info_mask(info))
+    np.testing.assert_array_equal(cached, run())
