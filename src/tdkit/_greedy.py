@@ -32,7 +32,7 @@ from __future__ import annotations
 
 import operator
 from collections.abc import Callable, Sequence
-from typing import NamedTuple
+from typing import Any, NamedTuple
 
 import numpy as np
 
@@ -47,6 +47,7 @@ __all__ = [
     "greedy_pick",
     "greedy_pick_rows",
     "greedy_rows",
+    "immutable_mask",
     "masked_max",
     "masked_mean",
     "row_max",
@@ -241,10 +242,26 @@ class ActionSet(NamedTuple):
     take: Callable[[Sequence[float]], tuple[float, ...]]
 
 
+def immutable_mask(mask: Any) -> np.ndarray:
+    """``mask`` as a boolean array over a ``bytes`` buffer: read-only for good.
+
+    numpy refuses to make such an array writeable again (its memory belongs to
+    an immutable ``bytes``), so its identity stands for its contents:
+    :class:`ActionSets` recognises it by ``id`` alone. Any array whose base is
+    a ``bytes`` object has that property, whoever made it.
+
+    Examples
+    --------
+    >>> frozen = immutable_mask(np.array([1, 0, 1], dtype=np.int8))
+    >>> frozen.tolist(), frozen.flags.writeable, type(frozen.base) is bytes
+    ([True, False, True], False, True)
+    """
+    return np.frombuffer(np.asarray(mask, dtype=bool).tobytes(), dtype=np.bool_)
+
+
 def _make_action_set(mask: np.ndarray) -> ActionSet:
     indices = tuple(int(i) for i in np.flatnonzero(mask))
-    frozen = np.array(mask, dtype=bool)
-    frozen.flags.writeable = False
+    frozen = immutable_mask(mask)
     if len(indices) == 1:
         only = indices[0]
         return ActionSet(indices, frozen, lambda row: (row[only],))
@@ -279,7 +296,9 @@ class ActionSets:
         self.n_actions = n_actions
         self.limit = limit
         self._by_bytes: dict[bytes, tuple[np.dtype, ActionSet]] = {}
-        self._by_id: dict[int, ActionSet] = {}
+        # id -> (array, set) for immutable arrays (the sets' own masks and any array over a
+        # bytes buffer): the array is held, so its id cannot be reused while it is here.
+        self._by_id: dict[int, tuple[np.ndarray, ActionSet]] = {}
 
     def get(self, mask: object, name: str = "mask") -> ActionSet:
         """The set ``mask`` allows.
@@ -290,27 +309,35 @@ class ActionSets:
             If ``mask`` has the wrong shape, values other than 0/1, or allows
             no action (see :func:`require_mask`).
         """
-        if type(mask) is np.ndarray and mask.ndim == 1:
-            key = mask.tobytes()
-            hit = self._by_bytes.get(key)
-            if hit is not None and hit[0] is mask.dtype:
-                return hit[1]
-            entry = _make_action_set(require_mask(mask, self.n_actions, name=name))
-            if len(self._by_bytes) >= self.limit:
-                self._by_bytes.clear()
-                self._by_id.clear()
-            self._by_bytes[key] = (mask.dtype, entry)
-            self._by_id[id(entry.mask)] = entry
-            return entry
+        if type(mask) is np.ndarray:
+            known = self._by_id.get(id(mask))
+            if known is not None and known[0] is mask:  # an immutable mask seen before
+                return known[1]
+            if mask.ndim == 1:
+                key = mask.tobytes()
+                hit = self._by_bytes.get(key)
+                if hit is not None and hit[0] is mask.dtype:
+                    entry = hit[1]
+                else:
+                    entry = _make_action_set(require_mask(mask, self.n_actions, name=name))
+                    if len(self._by_bytes) >= self.limit:
+                        self._by_bytes.clear()
+                        self._by_id.clear()
+                    self._by_bytes[key] = (mask.dtype, entry)
+                    self._by_id[id(entry.mask)] = (entry.mask, entry)
+                if type(mask.base) is bytes and len(self._by_id) < 2 * self.limit:
+                    # its contents can never change: its identity is enough from now on
+                    self._by_id[id(mask)] = (mask, entry)
+                return entry
         return _make_action_set(require_mask(mask, self.n_actions, name=name))
 
     def of(self, mask: np.ndarray | None) -> ActionSet | None:
         """The set of a boolean ``mask`` (None for None); cached arrays are found by identity."""
         if mask is None:
             return None
-        hit = self._by_id.get(id(mask))
-        if hit is not None and hit.mask is mask:
-            return hit
+        known = self._by_id.get(id(mask))
+        if known is not None and known[0] is mask:
+            return known[1]
         return self.get(mask)
 
 

@@ -17,7 +17,14 @@ from hypothesis import strategies as st
 
 import tdkit
 from tdkit._errors import InvalidParameterError
-from tdkit._greedy import ActionSets, greedy_action, greedy_index, masked_max, row_max
+from tdkit._greedy import (
+    ActionSets,
+    greedy_action,
+    greedy_index,
+    immutable_mask,
+    masked_max,
+    row_max,
+)
 
 # Few distinct values, so ties are common.
 rows = st.integers(1, 7).flatmap(
@@ -55,6 +62,53 @@ def test_action_sets_check_each_mask_once_and_accept_integer_masks():
     assert sets.get(taxi_like.copy()) is allowed  # a look-up, no new arrays
     assert sets.of(allowed.mask) is allowed
     assert sets.get(np.array([True, False, True, True])).indices == (0, 2, 3)
+
+
+def test_an_immutable_mask_is_known_by_identity_and_cannot_change():
+    sets = ActionSets(4)
+    frozen = immutable_mask([1, 0, 1, 1])
+    allowed = sets.get(frozen)
+    assert allowed.indices == (0, 2, 3)
+    assert sets.get(frozen) is allowed and sets.of(frozen) is allowed
+    with pytest.raises(ValueError):  # numpy refuses: the memory is a bytes object
+        frozen.flags.writeable = True
+    # a writable array is read by its contents every time, even when changed in place
+    mask = np.array([1, 1, 0, 0], dtype=np.int8)
+    assert sets.get(mask).indices == (0, 1)
+    mask[2] = 1
+    assert sets.get(mask).indices == (0, 1, 2)
+
+
+_mask_kinds = st.sampled_from(["int8", "bool", "immutable", "view of immutable", "edited"])
+
+
+@given(st.lists(st.tuples(st.lists(st.booleans(), min_size=3, max_size=3), _mask_kinds),
+                min_size=1, max_size=40),
+       st.integers(1, 3))
+def test_action_sets_give_the_set_of_every_mask_whatever_its_kind(masks, limit):
+    # Identity is trusted only for immutable arrays: masks edited in place, views, other
+    # dtypes and a cache emptied when full all give the set of their current contents.
+    sets = ActionSets(3, limit=limit)
+    held = []  # immutable masks passed again later, as a mask reader hands them out
+    edited = np.ones(3, dtype=np.int8)
+    for values, kind in masks:
+        if not any(values):
+            values = [True, *values[1:]]
+        if kind == "int8":
+            mask = np.array(values, dtype=np.int8)
+        elif kind == "bool":
+            mask = np.array(values)
+        elif kind == "edited":
+            edited[:] = values
+            mask = edited
+        else:
+            mask = immutable_mask(values)
+            held.append(mask)
+            if kind == "view of immutable":
+                mask = mask[:]
+        for m in (mask, *held[-2:]):
+            assert sets.get(m).indices == tuple(np.flatnonzero(m).tolist())
+            assert sets.of(sets.get(m).mask).indices == tuple(np.flatnonzero(m).tolist())
 
 
 @pytest.mark.parametrize(

@@ -31,6 +31,7 @@ from typing import Any, NamedTuple
 import numpy as np
 
 from .._errors import EnvironmentProtocolError
+from .._greedy import immutable_mask
 from .faults import AgentFault, checked_calls
 
 __all__ = [
@@ -122,8 +123,10 @@ class MaskReader:
     gymnasium's Taxi hands a new int8 ``action_mask`` every step;
     :func:`info_mask` turns it into a new boolean array (about 2 µs). A
     reader keeps the boolean form of each 1-D integer mask it has seen, keyed
-    by its dtype and bytes, and hands that same read-only array out again
-    (one ``tobytes`` and one look-up). Boolean numpy masks pass through as
+    by its dtype and bytes, and hands that same array out again (one
+    ``tobytes`` and one look-up). The array is immutable (numpy cannot make
+    it writeable again, see :func:`tdkit._greedy.immutable_mask`), so a tdkit
+    learner recognises it by identity alone. Boolean numpy masks pass through as
     they are, and anything else goes to :func:`info_mask`, so the values are
     always those of :func:`info_mask`. At most ``limit`` masks are kept.
 
@@ -156,7 +159,7 @@ class MaskReader:
             return hit[1]
         converted = info_mask(info)
         if type(converted) is np.ndarray and converted.dtype is _BOOL:
-            converted.flags.writeable = False
+            converted = immutable_mask(converted)  # a learner may know it by identity
             if len(self._by_bytes) >= self.limit:
                 self._by_bytes.clear()
             self._by_bytes[key] = (mask.dtype, converted)
