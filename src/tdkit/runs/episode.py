@@ -245,6 +245,8 @@ def run_episode(
         observe = agent.observe if learn else None
         update = agent.update if learn else None
     step_env = env.step
+    if read_mask is None:
+        read_mask = MaskReader()
     limit = max_episode_steps if max_episode_steps is not None else -1
     budget = step_budget if step_budget is not None else -1
     warn_at = warn_after if warn_after is not None else -1
@@ -257,8 +259,6 @@ def run_episode(
     settled = not learn  # a greedy run has nothing to settle
     try:
         obs, info = env.reset(seed=env_seed)
-        if read_mask is None:
-            read_mask = MaskReader()
         mask = read_mask(info) if use_action_masks else None
         while True:
             action = act(obs, mask=mask, explore=learn)

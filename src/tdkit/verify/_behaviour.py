@@ -111,7 +111,7 @@ class BehaviourReading:
         self.sampled_targets = 0
         self.expected_targets = 0
         self._implied: float | None = None
-        self._rows: tuple[np.ndarray, np.ndarray, float] | None = None
+        self._rows: tuple[list[float], list[float], float] | None = None
         self._expect: tuple[int, int] | None = None
 
     # The rows are read as lists of Python floats: the per-step reading costs a few
@@ -161,16 +161,17 @@ class BehaviourReading:
         if tol != tol:  # a NaN in the row or the bootstrap: nothing can be read
             return
         top, low = max(row2), min(row2)
-        near = [i for i, v in enumerate(row2) if abs(v - boot) <= tol]
         if abs(boot - top) <= tol:
             self.greedy_targets += 1
-        elif near and low < top:
+        elif low < top and (near := [i for i, v in enumerate(row2) if abs(v - boot) <= tol]):
             self._expect = (int(next_obs), near[0])
-        elif low - tol <= boot < top and top - float(np.mean(row2)) > 1e-6:
-            implied = float((top - boot) / (top - float(np.mean(row2))))
-            if self._implied is not None and abs(implied - self._implied) <= 1e-6:
-                self.expected_targets += 1
-            self._implied = implied
+        elif low - tol <= boot < top:
+            spread = top - float(np.mean(row2))
+            if spread > 1e-6:
+                implied = float((top - boot) / spread)
+                if self._implied is not None and abs(implied - self._implied) <= 1e-6:
+                    self.expected_targets += 1
+                self._implied = implied
 
     @property
     def policy_kind(self) -> str:
