@@ -268,6 +268,12 @@ def _make_action_set(mask: np.ndarray) -> ActionSet:
     return ActionSet(indices, frozen, operator.itemgetter(*indices))
 
 
+#: Placeholders of :class:`ActionSets`' memo before any immutable mask was seen: no mask
+#: given to ``get`` or ``of`` is either of these objects.
+_NO_MASK = object()
+_NO_SET = ActionSet((), immutable_mask(()), tuple)
+
+
 class ActionSets:
     """A learner's cache of :class:`ActionSet`: each distinct mask is checked and converted once.
 
@@ -290,7 +296,7 @@ class ActionSets:
     True
     """
 
-    __slots__ = ("_by_bytes", "_by_id", "limit", "n_actions")
+    __slots__ = ("_by_bytes", "_by_id", "_last_mask", "_last_set", "limit", "n_actions")
 
     def __init__(self, n_actions: int, *, limit: int = 4096) -> None:
         self.n_actions = n_actions
@@ -299,6 +305,11 @@ class ActionSets:
         # id -> (array, set) for immutable arrays (the sets' own masks and any array over a
         # bytes buffer): the array is held, so its id cannot be reused while it is here.
         self._by_id: dict[int, tuple[np.ndarray, ActionSet]] = {}
+        # The set found last, and the immutable array it was found by (if any): a run hands
+        # the same mask over and over (act, then observe, then the target), so one `is`
+        # usually answers. Only arrays whose contents cannot change are ever trusted so.
+        self._last_mask: object = _NO_MASK
+        self._last_set: ActionSet = _NO_SET
 
     def get(self, mask: object, name: str = "mask") -> ActionSet:
         """The set ``mask`` allows.
@@ -309,9 +320,12 @@ class ActionSets:
             If ``mask`` has the wrong shape, values other than 0/1, or allows
             no action (see :func:`require_mask`).
         """
+        if mask is self._last_mask or mask is self._last_set.mask:
+            return self._last_set
         if type(mask) is np.ndarray:
             known = self._by_id.get(id(mask))
             if known is not None and known[0] is mask:  # an immutable mask seen before
+                self._last_mask, self._last_set = mask, known[1]
                 return known[1]
             if mask.ndim == 1:
                 key = mask.tobytes()
@@ -323,11 +337,15 @@ class ActionSets:
                     if len(self._by_bytes) >= self.limit:
                         self._by_bytes.clear()
                         self._by_id.clear()
+                        self._last_mask, self._last_set = _NO_MASK, _NO_SET
                     self._by_bytes[key] = (mask.dtype, entry)
                     self._by_id[id(entry.mask)] = (entry.mask, entry)
                 if type(mask.base) is bytes and len(self._by_id) < 2 * self.limit:
                     # its contents can never change: its identity is enough from now on
                     self._by_id[id(mask)] = (mask, entry)
+                    self._last_mask, self._last_set = mask, entry
+                else:  # a writable mask is never known by identity; the set's own mask is
+                    self._last_mask, self._last_set = _NO_MASK, entry
                 return entry
         return _make_action_set(require_mask(mask, self.n_actions, name=name))
 
@@ -335,8 +353,11 @@ class ActionSets:
         """The set of a boolean ``mask`` (None for None); cached arrays are found by identity."""
         if mask is None:
             return None
+        if mask is self._last_set.mask or mask is self._last_mask:
+            return self._last_set
         known = self._by_id.get(id(mask))
         if known is not None and known[0] is mask:
+            self._last_mask, self._last_set = mask, known[1]
             return known[1]
         return self.get(mask)
 

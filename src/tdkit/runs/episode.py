@@ -151,18 +151,21 @@ class MaskReader:
         if not info:
             return None
         mask = info.get("action_mask")
-        if type(mask) is not np.ndarray or mask.dtype is _BOOL or mask.ndim != 1:
+        if type(mask) is not np.ndarray:
+            return info_mask(info)
+        dtype = mask.dtype
+        if dtype is _BOOL or mask.ndim != 1:
             return info_mask(info)
         key = mask.tobytes()
         hit = self._by_bytes.get(key)
-        if hit is not None and hit[0] is mask.dtype:
+        if hit is not None and hit[0] is dtype:
             return hit[1]
         converted = info_mask(info)
         if type(converted) is np.ndarray and converted.dtype is _BOOL:
             converted = immutable_mask(converted)  # a learner may know it by identity
             if len(self._by_bytes) >= self.limit:
                 self._by_bytes.clear()
-            self._by_bytes[key] = (mask.dtype, converted)
+            self._by_bytes[key] = (dtype, converted)
         return converted
 
 
@@ -247,6 +250,7 @@ def run_episode(
     step_env = env.step
     if read_mask is None:
         read_mask = MaskReader()
+    read = read_mask.__call__  # a bound method is called faster than an instance
     limit = max_episode_steps if max_episode_steps is not None else -1
     budget = step_budget if step_budget is not None else -1
     warn_at = warn_after if warn_after is not None else -1
@@ -259,7 +263,7 @@ def run_episode(
     settled = not learn  # a greedy run has nothing to settle
     try:
         obs, info = env.reset(seed=env_seed)
-        mask = read_mask(info) if use_action_masks else None
+        mask = read(info) if use_action_masks else None
         while True:
             action = act(obs, mask=mask, explore=learn)
             if hooks is not None:
@@ -270,7 +274,7 @@ def run_episode(
                 raise bad_reward(reward, length)
             if length == limit:
                 truncated = True
-            next_mask = read_mask(info) if use_action_masks else None
+            next_mask = read(info) if use_action_masks else None
             if learn:
                 if hooks is not None:
                     hooks.before_observe(
