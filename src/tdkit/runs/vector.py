@@ -30,7 +30,7 @@ import numpy as np
 from gymnasium.vector.utils import iterate
 
 from .._errors import InvalidParameterError
-from .episode import bad_reward, info_mask
+from .episode import MaskReader, bad_reward
 from .fit import require_agent_fits
 from .history import History
 from .seeds import episode_seed, root_sequence
@@ -62,15 +62,18 @@ def agent_roots(seed: Any, n: int) -> list[np.random.SeedSequence]:
     return root_sequence(seed).spawn(n)
 
 
-def _vector_mask(infos: dict, k: int) -> np.ndarray | None:
-    """Sub-environment ``k``'s action mask in batched vector ``infos`` (None when absent)."""
+def _vector_mask(infos: dict, k: int, read: MaskReader) -> np.ndarray | None:
+    """Sub-environment ``k``'s action mask in batched vector ``infos`` (None when absent).
+
+    ``read`` converts it as the scalar driver does (each distinct mask once per run).
+    """
     masks = infos.get("action_mask")
     if masks is None:
         return None
     present = infos.get("_action_mask")
     if present is not None and not present[k]:
         return None
-    return info_mask({"action_mask": masks[k]})
+    return read({"action_mask": masks[k]})
 
 
 class _Lane:
@@ -153,11 +156,12 @@ def train_vector(
     roots = agent_roots(seed, n)
     limit = max_episode_steps if max_episode_steps is not None else -1
     lanes = [_Lane(agent) for agent in agents]
+    read = MaskReader()  # one cache for every lane: the masks are immutable
     obs_space = venv.observation_space  # the batched space: iterate() splits it per lane
     try:
         obs, infos = venv.reset(seed=[episode_seed(roots[k], 0) for k in range(n)])
         for k, o in enumerate(iterate(obs_space, obs)):
-            lanes[k].new_episode(o, _vector_mask(infos, k) if use_action_masks else None)
+            lanes[k].new_episode(o, _vector_mask(infos, k, read) if use_action_masks else None)
         while any(lane.active for lane in lanes):
             actions = []
             for lane in lanes:
@@ -181,9 +185,9 @@ def train_vector(
                 if same_step and (terms[k] or truncs[k]):
                     o2 = infos["final_obs"][k]
                     final = infos["final_info"]
-                    next_mask = (_vector_mask(final, k) if use_action_masks else None)
+                    next_mask = (_vector_mask(final, k, read) if use_action_masks else None)
                 else:
-                    next_mask = _vector_mask(info_k, k) if use_action_masks else None
+                    next_mask = _vector_mask(info_k, k, read) if use_action_masks else None
                 lane.agent.observe(lane.obs, lane.action, reward, o2, terminated, truncated,
                                    next_mask=next_mask)
                 for err in lane.agent.update():
@@ -213,7 +217,7 @@ def train_vector(
                 fresh = list(iterate(obs_space, obs))
                 for k in np.flatnonzero(reset):
                     lanes[k].new_episode(
-                        fresh[k], _vector_mask(rinfos, k) if use_action_masks else None
+                        fresh[k], _vector_mask(rinfos, k, read) if use_action_masks else None
                     )
     finally:
         for lane in lanes:
