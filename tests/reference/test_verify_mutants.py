@@ -23,7 +23,7 @@ import pytest
 import tdkit
 from tdkit.agent import TabularAgent
 from tdkit.learners import NStepSarsa, QLearning, Sarsa, SarsaLambda
-from tdkit.verify import compare_updates, record_transitions, verify_agent
+from tdkit.verify import compare_updates, record_transitions, run_check, verify_agent
 
 # ---------------------------------------------------------------- the mutants
 
@@ -268,6 +268,18 @@ def test_verify_agent_fails_the_mutant_on_the_check_that_names_its_bug(make_agen
     words = NAMES.get(request.node.callspec.id)
     if words is not None:
         assert words in report[check].message, report[check].message
+
+
+@pytest.mark.parametrize("bug", ["minimising-target", "values-under-the-wrong-action"])
+def test_a_convergence_bug_fails_the_second_budget_too(bug):
+    # The convergence check trains a second budget when its first judgment fails; a bug
+    # that moves the fixed point fails again, and the rebuild line trains twice.
+    result = run_check(MUTANT_FACTORIES[bug], "convergence", level="quick", seed=3)
+    assert result.failed, result
+    assert "after a second budget of 6000 episodes (the first 6000 failed too)" in (
+        result.message)
+    assert result.rebuild.count("tdkit.train(") == 2, result.rebuild
+    assert result.where == "after 12000 episodes", result.where
 
 
 def test_the_unmutated_parents_pass_the_same_checks():
