@@ -109,6 +109,23 @@ def without(records: list[dict], checks: set[str]) -> list[dict]:
             for r in records]
 
 
+def pooled_bounds(records: list[dict]) -> dict[str, float]:
+    """Per check, the one-sided 95% upper bound of the false-alarm rate, all correct agents
+    pooled (exact Clopper-Pearson for 0 failures: 1 - 0.05^(1/n); with failures, the
+    summary's own bound is the one to read, so this returns 1.0)."""
+    merged, _ = cv.independent_reports(cv.merge_records(records))
+    runs: dict[str, int] = {}
+    failed: dict[str, int] = {}
+    for r in merged:
+        if r["variant"] == "mutant":
+            continue
+        for check, status in r["checks"].items():
+            if status in ("passed", "failed"):
+                runs[check] = runs.get(check, 0) + 1
+                failed[check] = failed.get(check, 0) + (status == "failed")
+    return {c: (1 - 0.05 ** (1 / n) if not failed[c] else 1.0) for c, n in runs.items()}
+
+
 def block() -> str:
     """The generated part of the Error rates section, as docs/verify.md holds it."""
     quick = drop([r for f in QUICK for r in load(f)], QDROPS)
@@ -127,15 +144,23 @@ def block() -> str:
     head = ("**Measured: the counts above are reached.**" if reached else
             "**Measured so far: short of the counts above.**")
     per_setting = 100 * (1 - 0.05 ** (1 / max(1, q_rest)))
+    q_bounds, f_bounds = pooled_bounds(quick), pooled_bounds(full)
+    q_checks, f_checks = len(q_bounds), len(f_bounds)
+    q_below = sum(b < 1e-3 for b in q_bounds.values())
+    f_below = sum(b < 1e-3 for b in f_bounds.values())
+    q_above = ", ".join(f"`{c}`" for c, b in sorted(q_bounds.items()) if b >= 1e-3) or "none"
+    f_low, f_high = min(f_bounds.values()), max(f_bounds.values())
+    failures = sum(s == "failed" for r in cv.independent_reports(cv.merge_records(quick))[0]
+                   + cv.independent_reports(cv.merge_records(full))[0]
+                   if r["variant"] != "mutant" for s in r["checks"].values())
     bounds = (
         f"One setting's 0 of {q_rest} bounds its rate only below {per_setting:.1f}% (95%); "
         "the pooled counts below put every check, over all correct agents together, "
         "against the design rate of 1 in 1,000 per run, with its 95% upper bound. That "
-        "bound is below 1 in 1,000 only where a check ran about 3,000 times or more "
-        "(every `quick` check but `average_reward`, which runs on the two differential "
-        "learners only); at `full` the bounds are 0.0012-0.0026, and 0.015 for "
-        "`average_reward`. Zero false alarms were observed in the current version of "
-        "every check."
+        "bound is below 1 in 1,000 only where a check ran about 3,000 times or more: "
+        f"at `quick` for {q_below} of {q_checks} checks (not for {q_above}), at `full` "
+        f"for {f_below} of {f_checks} (the bounds there: {f_low:.4f} to {f_high:.4f}). "
+        f"False alarms observed in the current version of the checks: {failures}."
         if reached else
         f"Until the counts are reached the upper bounds below are looser than the design "
         f"rate: 0 of {q_rest} bounds a rate only below {per_setting:.1f}%."
