@@ -231,6 +231,19 @@ def merge_records(records: list[dict]) -> list[dict]:
     return list(merged.values())
 
 
+def pooled_counts(records: list[dict]) -> dict[tuple[str, str], tuple[int, int]]:
+    """(level, check) -> (failed, runs) over every correct agent's records (skips excluded)."""
+    total: dict[tuple[str, str], list[int]] = defaultdict(lambda: [0, 0])
+    for r in records:
+        if r["variant"] == "mutant":
+            continue
+        for check, status in r["checks"].items():
+            if status in ("passed", "failed"):
+                total[(r["level"], check)][0] += status == "failed"
+                total[(r["level"], check)][1] += 1
+    return {key: (k, n) for key, (k, n) in total.items()}
+
+
 def summarize(records: list[dict]) -> str:
     records, overlapping = independent_reports(merge_records(records))
     mutants = _mutants_module().MUTANT_CHECKS
@@ -246,7 +259,6 @@ def summarize(records: list[dict]) -> str:
         lines.append("| level | learner | settings | runs of each check (fewest-most) "
                      "| runs with a failure | failures by check | s/run |")
         lines.append("|---|---|---|---|---|---|---|")
-        total = defaultdict(lambda: [0, 0])
         for (level, learner, variant), runs in sorted(groups.items()):
             if (variant == "defaults" and (level, learner, "recommended") not in groups
                     and learner not in PREDICTION and same_as_defaults(learner)):
@@ -256,8 +268,6 @@ def summarize(records: list[dict]) -> str:
             for c in checks:
                 k = sum(r["checks"].get(c) == "failed" for r in runs)
                 n_c = sum(r["checks"].get(c) in ("passed", "failed") for r in runs)
-                total[(level, c)][0] += k
-                total[(level, c)][1] += n_c
                 if n_c:
                     ran.append(n_c)
                 if k:
@@ -274,9 +284,8 @@ def summarize(records: list[dict]) -> str:
                      "ran, skips excluded; 95% upper bound)")
         lines.append("| level | check | failed / runs | upper bound |")
         lines.append("|---|---|---|---|")
-        for (level, c), (k, n) in sorted(total.items()):
-            if n:  # a check that ran nowhere at this level (skipped everywhere) has no row
-                lines.append(f"| {level} | {c} | {k}/{n} | {upper_bound(k, n):.4f} |")
+        for (level, c), (k, n) in sorted(pooled_counts(correct).items()):
+            lines.append(f"| {level} | {c} | {k}/{n} | {upper_bound(k, n):.4f} |")
     commits = sorted({c for r in records for c in r.get("commit", "unknown").split("+")})
     lines.append("")
     lines.append(f"{len(records)} records; source commit(s): {', '.join(commits)}")

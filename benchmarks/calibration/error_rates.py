@@ -109,21 +109,13 @@ def without(records: list[dict], checks: set[str]) -> list[dict]:
             for r in records]
 
 
-def pooled_bounds(records: list[dict]) -> dict[str, float]:
-    """Per check, the one-sided 95% upper bound of the false-alarm rate, all correct agents
-    pooled (exact Clopper-Pearson for 0 failures: 1 - 0.05^(1/n); with failures, the
-    summary's own bound is the one to read, so this returns 1.0)."""
+def pooled_bounds(records: list[dict]) -> tuple[dict[str, float], int]:
+    """Per check, the 95% upper bound of the false-alarm rate with every correct agent
+    pooled (as the ``--summarize`` tables give it), and the failures counted."""
     merged, _ = cv.independent_reports(cv.merge_records(records))
-    runs: dict[str, int] = {}
-    failed: dict[str, int] = {}
-    for r in merged:
-        if r["variant"] == "mutant":
-            continue
-        for check, status in r["checks"].items():
-            if status in ("passed", "failed"):
-                runs[check] = runs.get(check, 0) + 1
-                failed[check] = failed.get(check, 0) + (status == "failed")
-    return {c: (1 - 0.05 ** (1 / n) if not failed[c] else 1.0) for c, n in runs.items()}
+    pooled = cv.pooled_counts(merged)
+    bounds = {check: cv.upper_bound(k, n) for (_, check), (k, n) in pooled.items()}
+    return bounds, sum(k for k, _ in pooled.values())
 
 
 def block() -> str:
@@ -144,15 +136,13 @@ def block() -> str:
     head = ("**Measured: the counts above are reached.**" if reached else
             "**Measured so far: short of the counts above.**")
     per_setting = 100 * (1 - 0.05 ** (1 / max(1, q_rest)))
-    q_bounds, f_bounds = pooled_bounds(quick), pooled_bounds(full)
+    (q_bounds, q_failed), (f_bounds, f_failed) = pooled_bounds(quick), pooled_bounds(full)
     q_checks, f_checks = len(q_bounds), len(f_bounds)
     q_below = sum(b < 1e-3 for b in q_bounds.values())
     f_below = sum(b < 1e-3 for b in f_bounds.values())
     q_above = ", ".join(f"`{c}`" for c, b in sorted(q_bounds.items()) if b >= 1e-3) or "none"
     f_low, f_high = min(f_bounds.values()), max(f_bounds.values())
-    failures = sum(s == "failed" for r in cv.independent_reports(cv.merge_records(quick))[0]
-                   + cv.independent_reports(cv.merge_records(full))[0]
-                   if r["variant"] != "mutant" for s in r["checks"].values())
+    failures = q_failed + f_failed
     bounds = (
         f"One setting's 0 of {q_rest} bounds its rate only below {per_setting:.1f}% (95%); "
         "the pooled counts below put every check, over all correct agents together, "

@@ -353,12 +353,8 @@ class ActionSets:
         """The set of a boolean ``mask`` (None for None); cached arrays are found by identity."""
         if mask is None:
             return None
-        if mask is self._last_set.mask or mask is self._last_mask:
+        if mask is self._last_set.mask or mask is self._last_mask:  # get's first test, inlined
             return self._last_set
-        known = self._by_id.get(id(mask))
-        if known is not None and known[0] is mask:
-            self._last_mask, self._last_set = mask, known[1]
-            return known[1]
         return self.get(mask)
 
 

@@ -1374,8 +1374,7 @@ def check_convergence(ctx: Context) -> CheckResult:
     for problem in problems_:
         for seed in ctx.seeds:
             env = problem.mdp.to_env()
-            code = _rebuild_code(problem.code, seed, problem.episodes, problem.max_steps)
-            episodes_run = problem.episodes
+            budgets = 1  # blocks of problem.episodes trained so far
             try:
                 agent = build_agent(ctx.make_agent, env, seed)
                 if _last_outcome_model(agent) and not _deterministic(problem.mdp):
@@ -1384,22 +1383,24 @@ def check_convergence(ctx: Context) -> CheckResult:
                 live = [int(s) for s in np.flatnonzero(~problem.mdp.terminal)]
                 text, target = _train_and_judge(agent, env, problem, ctx.kind, live, seed, tests)
                 if text is not None:  # a second budget: the same training again, judged afresh
-                    code = _rebuild_code(problem.code, seed, problem.episodes, problem.max_steps,
-                                         times=2)
+                    budgets = 2
                     text, target = _train_and_judge(agent, env, problem, ctx.kind, live, seed,
                                                     tests, budget=2)
-                    if text is not None:
-                        text = (f"after a second budget of {problem.episodes} episodes (the "
-                                f"first {problem.episodes} failed too): {text}")
-                        episodes_run = 2 * problem.episodes
-                    else:
-                        second_budget.append(f"{problem.name} at seed {seed}")
             except AgentFault as fault:
+                code = _rebuild_code(problem.code, seed, problem.episodes, problem.max_steps,
+                                     times=budgets)
                 return _fault(name, fault, seed, problem.name, code)
             if text is not None:
+                if budgets == 2:
+                    text = (f"after a second budget of {problem.episodes} episodes (the first "
+                            f"{problem.episodes} failed too): {text}")
+                code = _rebuild_code(problem.code, seed, problem.episodes, problem.max_steps,
+                                     times=budgets)
                 return _result(name, FAILED, f"{text} [{problem.source}]", seed=seed,
-                               env=problem.name, where=f"after {episodes_run} episodes",
-                               rebuild=code)
+                               env=problem.name, where=f"after {budgets * problem.episodes} "
+                               "episodes", rebuild=code)
+            if budgets == 2:
+                second_budget.append(f"{problem.name} at seed {seed}")
             found.append(target)
         else:
             checked.append(problem.name)
